@@ -1,0 +1,17 @@
+"""Engine adapters. Each engine kind lives in its own module; :func:`get_engine` builds one."""
+
+from __future__ import annotations
+
+from ionwell.engines.base import Engine, StepResult
+
+__all__ = ["Engine", "StepResult", "get_engine"]
+
+
+def get_engine(campaign) -> Engine:
+    """Build the engine adapter for a :class:`ionwell.config.Campaign`'s engine and relaxation."""
+    kind = campaign.engine.kind
+    if kind == "pyscf":
+        from ionwell.engines.pyscf_engine import PyscfEngine
+
+        return PyscfEngine(campaign.engine, campaign.relax)
+    raise ValueError(f"unknown engine kind {kind!r}")

@@ -1,0 +1,92 @@
+"""The engine contract and the normalised result of one compute.
+
+An engine says *what* to compute and how to read it; a launcher says how to start it on a machine.
+
+    prepare(atoms, workdir, context) -> None     write inputs into ``workdir``
+    argv(workdir, launcher) -> list[str] | None  command to run, or None for in-process engines
+    run(workdir) -> None                         in-process engines only
+    collect(workdir) -> StepResult               parse; raise EngineOutputError(file + reason)
+
+Units in a :class:`StepResult`: energies eV, forces eV/Å, lengths Å, potential volts.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Protocol
+
+import numpy as np
+from ase import Atoms
+from pydantic import BaseModel, ConfigDict, Field
+
+from ionwell.grid import Grid
+
+
+class ComputeContext(BaseModel):
+    """What an engine needs to know beyond the structure.
+
+    ``charge`` and ``spin`` (2S, unpaired electrons) are for the whole system; ``spin=None``
+    lets the engine choose (lowest multiplicity allowed by the electron count). ``movable`` lists
+    atom indices the relaxation may move (empty: no relaxation). ``previous`` is the engine folder
+    of the previous step, for warm starts.
+    """
+
+    model_config = ConfigDict(frozen=True, arbitrary_types_allowed=True)
+
+    step: int
+    charge: int = 0
+    spin: int | None = None
+    movable: tuple[int, ...] = ()
+    previous: Path | None = None
+
+
+class StepResult(BaseModel):
+    """Normalised result of one engine compute (final, relaxed geometry)."""
+
+    model_config = ConfigDict(arbitrary_types_allowed=True)
+
+    energy: float = Field(description="total energy, eV")
+    forces: list[list[float]] | None = Field(None, description="eV/Å, per atom")
+    scf_converged: bool
+    scf_iterations: int | None = None
+    relax_converged: bool | None = Field(None, description="None when no relaxation was asked")
+    relax_steps: int = 0
+    symbols: list[str]
+    positions: list[list[float]] = Field(description="relaxed positions, Å")
+    cell: list[list[float]] | None = None
+    pbc: list[bool] = [False, False, False]
+    charge: int = 0
+    spin: int = 0
+    charges: list[float] | None = Field(None, description="atomic charges, e")
+    charge_scheme: str | None = Field(None, description="e.g. 'mulliken'")
+    orbital_energies: list[list[float]] | None = Field(None, description="eV, per spin channel")
+    occupations: list[list[float]] | None = None
+    fermi_level: float | None = Field(None, description="eV")
+    homo: float | None = Field(None, description="eV")
+    lumo: float | None = Field(None, description="eV")
+    code: str
+    code_version: str
+    wall_time: float = Field(description="seconds")
+    warm_started: bool = False
+    potential_file: str | None = Field(None, description="grid file name beside result.json")
+
+    def atoms(self) -> Atoms:
+        """The relaxed structure as ASE ``Atoms``."""
+        a = Atoms(self.symbols, positions=np.array(self.positions), pbc=self.pbc)
+        if self.cell is not None:
+            a.cell = np.array(self.cell)
+        return a
+
+
+class Engine(Protocol):
+    """The adapter every engine kind implements."""
+
+    name: str
+
+    def prepare(self, atoms: Atoms, workdir: Path, context: ComputeContext) -> None: ...
+
+    def argv(self, workdir: Path, launcher: object | None = None) -> list[str] | None: ...
+
+    def run(self, workdir: Path) -> None: ...
+
+    def collect(self, workdir: Path) -> tuple[StepResult, Grid]: ...
