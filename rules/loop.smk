@@ -1,0 +1,41 @@
+# The insertion loop: step N's input is step N-1's published status; the summary walks the steps
+# through the checkpoint until one of them says "stop".
+
+
+wildcard_constraints:
+    step=r"\d{4}",
+
+
+def _step_input(wildcards):
+    n = int(wildcards.step)
+    if n == 0:
+        return f"{CDIR}/host.extxyz"
+    return f"{CDIR}/steps/{n - 1:04d}/status.json"
+
+
+checkpoint step:
+    input:
+        _step_input,
+    output:
+        f"{CDIR}/steps/{{step}}/status.json",
+    run:
+        loop.run_step(CDIR, int(wildcards.step))
+
+
+def _finished_steps(wildcards):
+    done, n = [], 0
+    while True:
+        status = checkpoints.step.get(step=f"{n:04d}").output[0]
+        done.append(status)
+        if loop.read_status(status).outcome == "stop":
+            return done
+        n += 1
+
+
+rule summary:
+    input:
+        _finished_steps,
+    output:
+        f"{CDIR}/summary.json",
+    run:
+        loop.summarize(CDIR)

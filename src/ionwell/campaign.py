@@ -1,0 +1,316 @@
+"""A campaign folder on disk: layout, atomic publication, the frozen config, the controller lock.
+
+Layout (see DESIGN.md)::
+
+    campaigns/<name>/
+      campaign.yaml       validated config as run (frozen)
+      host.extxyz         the pristine host
+      steps/0007/         one folder per step; status.json is published last
+      ledger.jsonl        one hash-chained record per finished step
+      ionwell.db          ASE database mirror of the ledger
+      events.jsonl        append-only log of step attempts (audit aid, not a record)
+
+Every file a step hands on is written under a temporary name, flushed, and renamed into place.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import socket
+import tempfile
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+from ionwell.config import Campaign, config_diff, dump_campaign, load_campaign
+from ionwell.errors import ConfigError, LockError
+
+STEP_DIGITS = 4
+
+
+@dataclass(frozen=True)
+class CampaignPaths:
+    """Where each part of a campaign lives. ``root`` is ``campaigns/<name>``."""
+
+    root: Path
+
+    @property
+    def config(self) -> Path:
+        return self.root / "campaign.yaml"
+
+    @property
+    def host(self) -> Path:
+        return self.root / "host.extxyz"
+
+    @property
+    def ledger(self) -> Path:
+        return self.root / "ledger.jsonl"
+
+    @property
+    def database(self) -> Path:
+        return self.root / "ionwell.db"
+
+    @property
+    def events(self) -> Path:
+        return self.root / "events.jsonl"
+
+    @property
+    def summary(self) -> Path:
+        return self.root / "summary.json"
+
+    @property
+    def trajectory(self) -> Path:
+        return self.root / "trajectory.extxyz"
+
+    @property
+    def lock(self) -> Path:
+        return self.root / "controller.lock"
+
+    @property
+    def log(self) -> Path:
+        return self.root / "ionwell.log"
+
+    @property
+    def steps(self) -> Path:
+        return self.root / "steps"
+
+    def step(self, n: int) -> Path:
+        return self.steps / step_label(n)
+
+    def existing_steps(self) -> list[int]:
+        """Step numbers that have a folder, ascending."""
+        if not self.steps.is_dir():
+            return []
+        return sorted(
+            int(p.name) for p in self.steps.iterdir() if p.is_dir() and p.name.isdigit()
+        )
+
+
+def step_label(n: int) -> str:
+    """Folder name of step ``n`` (zero-padded)."""
+    return f"{n:0{STEP_DIGITS}d}"
+
+
+def campaign_dir(root: str | Path, name: str) -> Path:
+    """``<root>/campaigns/<name>``."""
+    return Path(root) / "campaigns" / name
+
+
+# ---------------------------------------------------------------------------------------------
+# atomic publication
+
+
+def _fsync_dir(path: Path) -> None:
+    with contextlib.suppress(OSError):
+        fd = os.open(path, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+def atomic_write_bytes(path: Path, data: bytes) -> None:
+    """Write ``data`` to ``path`` so that readers see either the old file or the whole new one."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
+    _fsync_dir(path.parent)
+
+
+def atomic_write_text(path: Path, text: str) -> None:
+    """Text variant of :func:`atomic_write_bytes` (UTF-8)."""
+    atomic_write_bytes(path, text.encode())
+
+
+def atomic_write_json(path: Path, obj: object) -> None:
+    """Write JSON (sorted keys, indented) atomically."""
+    atomic_write_text(path, json.dumps(obj, indent=2, sort_keys=True) + "\n")
+
+
+def atomic_publish(tmp: Path, path: Path) -> None:
+    """Flush an already written temporary file and rename it onto ``path``."""
+    fd = os.open(tmp, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+    os.replace(tmp, path)
+    _fsync_dir(path.parent)
+
+
+def append_event(paths: CampaignPaths, **fields: object) -> None:
+    """Append one line to ``events.jsonl`` (time, pid, host added)."""
+    rec = {"time": time.time(), "pid": os.getpid(), "host": socket.gethostname(), **fields}
+    paths.root.mkdir(parents=True, exist_ok=True)
+    with open(paths.events, "a") as fh:
+        fh.write(json.dumps(rec, sort_keys=True) + "\n")
+        fh.flush()
+        os.fsync(fh.fileno())
+
+
+# ---------------------------------------------------------------------------------------------
+# the frozen config
+
+
+def freeze_or_check(paths: CampaignPaths, campaign: Campaign) -> bool:
+    """Freeze ``campaign`` into the folder, or check it equals the frozen one.
+
+    Returns True when the config was frozen now (a new campaign). Raises :class:`ConfigError`
+    with the difference when the campaign exists with another config.
+    """
+    if paths.config.exists():
+        frozen = load_frozen(paths)
+        if frozen != campaign:
+            raise ConfigError(
+                f"{paths.config}: campaign '{campaign.name}' already exists with another "
+                "configuration; refusing to continue it with a changed config. Give the new "
+                "config another name to start a new campaign. Differences:\n"
+                + config_diff(frozen, campaign)
+            )
+        return False
+    atomic_write_text(paths.config, dump_campaign(campaign))
+    return True
+
+
+def load_frozen(paths: CampaignPaths) -> Campaign:
+    """The campaign config as frozen in the folder."""
+    if not paths.config.exists():
+        raise ConfigError(f"{paths.root}: not a campaign folder (no campaign.yaml)")
+    return load_campaign(paths.config)
+
+
+# ---------------------------------------------------------------------------------------------
+# controller lock
+
+
+def _process_start_time(pid: int) -> str | None:
+    """Kernel start time of ``pid`` (clock ticks since boot), or None if no such process."""
+    try:
+        stat = Path(f"/proc/{pid}/stat").read_text()
+    except OSError:
+        return None
+    # field 22, after the parenthesised command name (which may contain spaces)
+    return stat.rsplit(")", 1)[1].split()[19]
+
+
+def _group_alive(pgid: int) -> bool:
+    try:
+        os.killpg(pgid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+@dataclass
+class ControllerLock:
+    """One controller per campaign: a lock file holding host, pid, process start time, group.
+
+    A previous controller is *provably gone* when it ran on this host and its pid no longer
+    exists with the recorded start time. Its leftover process group (spawned jobs) is then
+    ended before the new controller starts.
+    """
+
+    path: Path
+
+    def read(self) -> dict | None:
+        try:
+            return json.loads(self.path.read_text())
+        except (OSError, ValueError):
+            return None
+
+    def holder_alive(self, info: dict) -> bool | None:
+        """True/False for a holder on this host; None when it is on another host."""
+        if info.get("host") != socket.gethostname():
+            return None
+        start = _process_start_time(int(info.get("pid", -1)))
+        return start is not None and start == info.get("start")
+
+    def acquire(self) -> bool:
+        """Take the lock. Returns True when a stale lock of a dead controller was cleared."""
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        pid = os.getpid()
+        mine = {
+            "host": socket.gethostname(),
+            "pid": pid,
+            # the group is ours to clean up only when we lead it
+            "pgid": pid if os.getpgid(pid) == pid else None,
+            "start": _process_start_time(pid),
+            "since": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+        }
+        stale = False
+        for _ in range(2):
+            try:
+                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
+            except FileExistsError:
+                info = self.read() or {}
+                alive = self.holder_alive(info)
+                if alive is None:
+                    raise LockError(
+                        f"{self.path}: campaign is held by a controller on host "
+                        f"{info.get('host')!r} (pid {info.get('pid')}, since {info.get('since')}); "
+                        "cannot prove it is gone from here. Remove the lock file by hand once it is."
+                    ) from None
+                if alive:
+                    raise LockError(
+                        f"{self.path}: another controller is running this campaign "
+                        f"(pid {info.get('pid')}, since {info.get('since')})"
+                    ) from None
+                self._end_leftovers(info)
+                with contextlib.suppress(FileNotFoundError):
+                    self.path.unlink()
+                stale = True
+                continue
+            with os.fdopen(fd, "w") as fh:
+                json.dump(mine, fh)
+                fh.flush()
+                os.fsync(fh.fileno())
+            return stale
+        raise LockError(f"{self.path}: could not take the controller lock")
+
+    @staticmethod
+    def _end_leftovers(info: dict) -> None:
+        """End what is left of a dead controller's process group (its spawned step jobs)."""
+        pgid = info.get("pgid")
+        if not isinstance(pgid, int) or pgid <= 1 or pgid == os.getpgid(0):
+            return
+        for sig, wait in ((15, 5.0), (9, 5.0)):
+            if not _group_alive(pgid):
+                return
+            with contextlib.suppress(ProcessLookupError, PermissionError):
+                os.killpg(pgid, sig)
+            deadline = time.monotonic() + wait
+            while time.monotonic() < deadline and _group_alive(pgid):
+                time.sleep(0.1)
+
+    def release(self) -> None:
+        info = self.read()
+        if info and info.get("pid") == os.getpid():
+            with contextlib.suppress(FileNotFoundError):
+                self.path.unlink()
+
+
+def controller_state(paths: CampaignPaths) -> str | None:
+    """Human description of a live controller holding the campaign, or None."""
+    lock = ControllerLock(paths.lock)
+    info = lock.read()
+    if not info:
+        return None
+    alive = lock.holder_alive(info)
+    if alive is False:
+        return None
+    where = "" if alive else f" on {info.get('host')}"
+    return f"controller pid {info.get('pid')}{where} since {info.get('since')}"

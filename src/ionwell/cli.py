@@ -1,0 +1,197 @@
+"""The ``ionwell`` command. The only module that prints.
+
+    ionwell run CONFIG.yaml            run or resume a campaign (drives Snakemake)
+    ionwell status campaigns/<name>    table of steps and where the campaign stands
+    ionwell place POTENTIAL.cube       one-shot: where would the next guest go?
+    ionwell verify campaigns/<name>    check the ledger against the files on disk
+    ionwell schema                     JSON Schema of the campaign config
+"""
+
+from __future__ import annotations
+
+import argparse
+import ctypes
+import logging
+import os
+import signal
+import subprocess
+import sys
+from pathlib import Path
+
+import ionwell
+from ionwell import cli_place
+from ionwell.errors import IonwellError
+
+log = logging.getLogger("ionwell.cli")
+
+
+def _die_with_parent() -> None:  # pragma: no cover - runs in the child before exec
+    """Make the Snakemake child receive SIGKILL when the controller dies (Linux)."""
+    try:
+        libc = ctypes.CDLL("libc.so.6", use_errno=True)
+        libc.prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG
+    except OSError:
+        pass
+
+
+def _profile_dir(name: str) -> Path:
+    p = Path(name)
+    if p.is_dir():
+        return p.resolve()
+    packaged = ionwell.snakefile().parent.parent / "profiles" / name
+    if packaged.is_dir():
+        return packaged
+    raise IonwellError(f"--profile {name}: no such profile folder (expected a directory)")
+
+
+def snakemake_argv(config: Path, root: Path, args: argparse.Namespace) -> list[str]:
+    """The Snakemake command line that runs a campaign."""
+    argv = [
+        sys.executable,
+        "-m",
+        "snakemake",
+        "--snakefile",
+        str(ionwell.snakefile()),
+        "--configfile",
+        str(config.resolve()),
+        "--directory",
+        str(root.resolve()),
+        "--rerun-triggers",
+        "mtime",
+        "--rerun-incomplete",
+    ]
+    if args.profile:
+        argv += ["--profile", str(_profile_dir(args.profile))]
+    if args.cores or not args.profile:
+        argv += ["--cores", str(args.cores or 1)]
+    if not args.verbose:
+        argv += ["--quiet", "rules", "host", "reason", "progress"]
+    return argv
+
+
+def cmd_run(args: argparse.Namespace) -> int:
+    from ionwell.campaign import ControllerLock
+    from ionwell.config import load_campaign
+    from ionwell.loop import describe_error, prepare_campaign
+    from ionwell.status import campaign_status, format_status
+
+    config = Path(args.config)
+    campaign = load_campaign(config)
+    root = Path(args.root)
+    paths = prepare_campaign(campaign, root, config.resolve().parent)
+    lock = ControllerLock(paths.lock)
+    stale = lock.acquire()
+    try:
+        argv = snakemake_argv(config, root, args)
+        if stale:
+            print(f"ionwell: an earlier controller of '{campaign.name}' is gone; resuming")
+            subprocess.run(
+                [*argv, "--unlock"], check=False, capture_output=True, preexec_fn=_die_with_parent
+            )
+        print(f"ionwell: running campaign '{campaign.name}' in {paths.root}", flush=True)
+        proc = subprocess.run(argv, check=False, preexec_fn=_die_with_parent)
+    finally:
+        lock.release()
+    st = campaign_status(paths.root)
+    print()
+    print(format_status(st))
+    if proc.returncode != 0:
+        err = describe_error(paths)
+        why = err.message if err else "Snakemake failed; see the messages above"
+        print(f"ionwell: error: campaign '{campaign.name}' did not finish: {why}", file=sys.stderr)
+        return 1
+    return 0
+
+
+def cmd_status(args: argparse.Namespace) -> int:
+    from ionwell.status import campaign_status, format_status, status_json
+
+    st = campaign_status(args.campaign)
+    print(status_json(st) if args.json else format_status(st))
+    return 0
+
+
+def cmd_verify(args: argparse.Namespace) -> int:
+    from ionwell.campaign import CampaignPaths
+    from ionwell.ledger import read_ledger, verify
+
+    paths = CampaignPaths(Path(args.campaign))
+    if not paths.ledger.exists():
+        raise IonwellError(f"{paths.root}: no ledger.jsonl (not a campaign folder, or no step yet)")
+    problems = verify(paths)
+    if not problems:
+        n = len(read_ledger(paths.ledger))
+        print(f"ok: {n} steps, every recorded file matches its hash, chain intact")
+        return 0
+    first = problems[0]
+    where = f", file {first.file}" if first.file else ""
+    print(f"verify failed: step {first.step}{where}: {first.message}", file=sys.stderr)
+    for p in problems[1:]:
+        where = f", file {p.file}" if p.file else ""
+        print(f"  also step {p.step}{where}: {p.message}", file=sys.stderr)
+    return 1
+
+
+def cmd_schema(args: argparse.Namespace) -> int:
+    from ionwell.config import campaign_schema
+
+    text = campaign_schema()
+    if args.output:
+        Path(args.output).write_text(text + "\n")
+    else:
+        print(text)
+    return 0
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="ionwell",
+        description="Unattended guest-ion insertion series with provenance and analysis.",
+    )
+    p.add_argument("--version", action="version", version=f"ionwell {ionwell.__version__}")
+    sub = p.add_subparsers(dest="command", required=True)
+
+    r = sub.add_parser("run", help="run or resume a campaign")
+    r.add_argument("config", help="campaign YAML file")
+    r.add_argument("--root", default=".", help="folder holding campaigns/ (default: .)")
+    r.add_argument("--cores", type=int, default=None, help="cores for Snakemake (default 1)")
+    r.add_argument("--profile", default=None, help="Snakemake profile: local, or a folder")
+    r.add_argument("-v", "--verbose", action="store_true", help="show Snakemake's own output")
+    r.set_defaults(func=cmd_run)
+
+    s = sub.add_parser("status", help="table of steps and where the campaign stands")
+    s.add_argument("campaign", help="campaign folder, e.g. campaigns/<name>")
+    s.add_argument("--json", action="store_true", help="machine-readable output")
+    s.set_defaults(func=cmd_status)
+
+    cli_place.add_parser(sub)
+
+    v = sub.add_parser("verify", help="check the ledger against the files on disk")
+    v.add_argument("campaign", help="campaign folder")
+    v.set_defaults(func=cmd_verify)
+
+    sc = sub.add_parser("schema", help="print the JSON Schema of campaign configs")
+    sc.add_argument("-o", "--output", default=None, help="write to this file")
+    sc.set_defaults(func=cmd_schema)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    from ionwell.logsetup import cli_logging
+
+    args = build_parser().parse_args(argv)
+    cli_logging(verbose=getattr(args, "verbose", False))
+    try:
+        return int(args.func(args) or 0)
+    except IonwellError as err:
+        print(f"ionwell: error: {err}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("ionwell: interrupted", file=sys.stderr)
+        return 130
+    except BrokenPipeError:
+        os._exit(0)
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,200 @@
+"""End to end: a small real-DFT campaign through `ionwell run` (Snakemake + PySCF), resumed
+after SIGKILL of the controller at random moments, compared with an uninterrupted run."""
+
+from __future__ import annotations
+
+import json
+import os
+import random
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import yaml
+from ase.db import connect
+from ase.io import read
+
+from ionwell.campaign import CampaignPaths
+from ionwell.ledger import read_ledger
+
+pytestmark = pytest.mark.slow
+
+IONWELL = [sys.executable, "-m", "ionwell.cli"]
+
+# A campaign small enough for a test: Li atoms into one benzene sheet (LDA/STO-3G, coarse grid).
+TINY = {
+    "name": "tiny",
+    "seed": 3,
+    "host": {"builder": {"kind": "flake", "layers": 1, "shells": 1}},
+    "guest": {"element": "Li", "charge_mode": "neutral"},
+    "engine": {
+        "kind": "pyscf",
+        "xc": "lda,vwn",
+        "basis": "sto-3g",
+        "conv_tol": 1e-7,
+        "threads": 1,
+        "potential_grid": {"spacing": 0.4, "margin": 3.0},
+    },
+    "placement": {"within": 3.0},
+    "relax": {"enabled": True, "fmax": 0.2, "steps": 4},
+    "stop": {"guests": 3, "max_steps": 10},
+}
+
+
+def _write_config(folder: Path, **changes) -> Path:
+    data = json.loads(json.dumps(TINY))
+    data.update(changes)
+    f = folder / "tiny.yaml"
+    f.write_text(yaml.safe_dump(data))
+    return f
+
+
+def _run(config: Path, root: Path, timeout: float = 600) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [*IONWELL, "run", str(config), "--root", str(root)],
+        capture_output=True,
+        text=True,
+        timeout=timeout,
+    )
+
+
+def _summary(root: Path) -> dict:
+    paths = CampaignPaths(root / "campaigns" / "tiny")
+    recs = read_ledger(paths.ledger)
+    return {
+        "sites": [
+            None if r.decision is None else [s.position for s in r.decision.chosen] for r in recs
+        ],
+        "energies": [r.energy for r in recs],
+        "structures": [read(paths.step(r.step) / "relaxed.extxyz").positions for r in recs],
+        "outcomes": [r.outcome for r in recs],
+        "guests": [r.guests for r in recs],
+    }
+
+
+@pytest.fixture(scope="module")
+def reference(tmp_path_factory):
+    """One uninterrupted run; the other tests compare against it."""
+    root = tmp_path_factory.mktemp("uninterrupted")
+    cfg = _write_config(root)
+    t0 = time.monotonic()
+    proc = _run(cfg, root)
+    elapsed = time.monotonic() - t0
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    return root, cfg, elapsed, proc
+
+
+def test_uninterrupted_campaign_reaches_its_stop_rule(reference):
+    root, cfg, _, proc = reference
+    paths = CampaignPaths(root / "campaigns" / "tiny")
+    recs = read_ledger(paths.ledger)
+    assert [r.guests for r in recs] == [0, 1, 2, 3]
+    assert recs[-1].outcome == "stop" and "target reached" in recs[-1].stop_reason
+    assert all(r.scf_converged for r in recs)
+    # the status table is printed at the end
+    assert "state: finished" in proc.stdout
+    # every recorded file is on disk and matches
+    v = subprocess.run([*IONWELL, "verify", str(paths.root)], capture_output=True, text=True)
+    assert v.returncode == 0, v.stderr
+    # derived outputs
+    assert len(read(paths.trajectory, index=":")) == 4
+    assert sorted(row.step for row in connect(paths.database).select()) == [0, 1, 2, 3]
+    summary = json.loads(paths.summary.read_text())
+    assert summary["guests"] == 3
+    # each placed guest sits in the admissible region: away from the ring atoms
+    final = read(paths.step(3) / "relaxed.extxyz")
+    li = final.positions[12:]
+    host = final.positions[:12]
+    d = np.linalg.norm(li[:, None, :] - host[None, :, :], axis=2)
+    assert d.min() > 1.5
+
+
+def test_rerun_of_finished_campaign_recomputes_nothing(reference):
+    root, cfg, _, _ = reference
+    paths = CampaignPaths(root / "campaigns" / "tiny")
+    before = paths.ledger.read_bytes()
+    proc = _run(cfg, root)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert paths.ledger.read_bytes() == before
+    events = [json.loads(x) for x in paths.events.read_text().splitlines()]
+    assert [e["event"] for e in events].count("started") == 4
+
+
+def test_changed_config_is_refused_with_a_diff(reference):
+    root, _, _, _ = reference
+    changed = dict(TINY)
+    changed["relax"] = {"enabled": True, "fmax": 0.1, "steps": 4}
+    cfg = root / "changed.yaml"
+    cfg.write_text(yaml.safe_dump(changed))
+    proc = _run(cfg, root)
+    assert proc.returncode == 2
+    assert "refusing" in proc.stderr and "+  fmax: 0.1" in proc.stderr
+    assert "Traceback" not in proc.stderr
+
+
+def test_second_controller_is_refused(reference, tmp_path):
+    root, cfg, _, _ = reference
+    paths = CampaignPaths(root / "campaigns" / "tiny")
+    # a live controller: this test process itself, recorded the way ionwell records one
+    from ionwell.campaign import ControllerLock
+
+    lock = ControllerLock(paths.lock)
+    lock.acquire()
+    try:
+        proc = _run(cfg, root)
+    finally:
+        lock.release()
+    assert proc.returncode == 2
+    assert "another controller is running" in proc.stderr
+
+
+def test_sigkill_at_random_moments_then_resume_matches(reference, tmp_path):
+    ref_root, _, elapsed, _ = reference
+    root = tmp_path
+    cfg = _write_config(root)
+    rng = random.Random(20261201)
+    paths = CampaignPaths(root / "campaigns" / "tiny")
+    kills = 0
+    while kills < 3:
+        proc = subprocess.Popen(
+            [*IONWELL, "run", str(cfg), "--root", str(root)],
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+            start_new_session=True,
+        )
+        time.sleep(rng.uniform(1.0, max(2.0, elapsed / 3)))
+        if proc.poll() is not None:
+            break  # finished before the kill: nothing left to interrupt
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait()
+        kills += 1
+    assert kills >= 1
+    final = _run(cfg, root)
+    assert final.returncode == 0, final.stderr[-3000:]
+
+    ref, got = _summary(ref_root), _summary(root)
+    assert got["guests"] == ref["guests"] and got["outcomes"] == ref["outcomes"]
+    for a, b in zip(ref["sites"], got["sites"], strict=True):
+        assert (a is None) == (b is None)
+        if a is not None:
+            np.testing.assert_allclose(a, b, atol=1e-3)
+    for a, b in zip(ref["structures"], got["structures"], strict=True):
+        np.testing.assert_allclose(a, b, atol=1e-3)
+    np.testing.assert_allclose(got["energies"], ref["energies"], atol=1e-4)
+
+    # no step was computed again after it was recorded, and none was skipped
+    events = [json.loads(x) for x in paths.events.read_text().splitlines()]
+    recorded_at: dict[int, int] = {}
+    for i, e in enumerate(events):
+        if e["event"] == "recorded":
+            assert e["step"] not in recorded_at, f"step {e['step']} recorded twice"
+            recorded_at[e["step"]] = i
+        if e["event"] == "started" and e["step"] in recorded_at:
+            pytest.fail(f"step {e['step']} started again after it was recorded")
+    assert sorted(recorded_at) == [0, 1, 2, 3]
+    v = subprocess.run([*IONWELL, "verify", str(paths.root)], capture_output=True, text=True)
+    assert v.returncode == 0, v.stderr
