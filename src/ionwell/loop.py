@@ -298,7 +298,7 @@ def _compute_and_record(paths: CampaignPaths, step: int) -> LedgerRecord:
                 decision.chosen[0].potential,
             )  # fmt: skip
         else:
-            reason = f"no admissible well: {decision.reason}"
+            reason = decision.reason
     if reason is not None:
         atomic_write_json(sdir / "STOP", {"step": step, "reason": reason})
         log.info("step %04d: E = %.6f eV; campaign stops: %s", step, result.energy, reason)
