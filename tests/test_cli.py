@@ -28,7 +28,10 @@ def _assert_one_clear_error(proc, *needles):
     [
         ({"name": "x", "host": {"builder": {"shells": 1}}, "stopp": {}}, ["stopp", "unknown key"]),
         ({"name": "x", "host": {"builder": {"shells": 0}}}, ["host.builder.shells"]),
-        ({"name": "x", "host": {"builder": {"shells": 1}}, "guest": {"element": "Q"}}, ["guest.element"]),
+        (
+            {"name": "x", "host": {"builder": {"shells": 1}}, "guest": {"element": "Q"}},
+            ["guest.element"],
+        ),
         ({"host": {"builder": {"shells": 1}}}, ["name", "required"]),
     ],
 )
@@ -37,7 +40,9 @@ def test_bad_config_gives_one_clear_error(tmp_path, config, needles):
     f.write_text(yaml.safe_dump(config))
     proc = _ionwell("run", str(f), "--root", str(tmp_path))
     _assert_one_clear_error(proc, "bad.yaml", *needles)
-    assert not (tmp_path / "campaigns").exists() or not any((tmp_path / "campaigns").rglob("*.jsonl"))
+    assert not (tmp_path / "campaigns").exists() or not any(
+        (tmp_path / "campaigns").rglob("*.jsonl")
+    )
 
 
 @pytest.mark.parametrize(
@@ -59,6 +64,8 @@ def test_bad_structure_file_gives_one_clear_error(tmp_path, content, needle):
 
 
 def test_missing_config_and_non_campaign_folders(tmp_path):
-    _assert_one_clear_error(_ionwell("run", str(tmp_path / "nope.yaml")), "nope.yaml", "cannot read")
+    _assert_one_clear_error(
+        _ionwell("run", str(tmp_path / "nope.yaml")), "nope.yaml", "cannot read"
+    )
     _assert_one_clear_error(_ionwell("status", str(tmp_path)), "not a campaign folder")
     _assert_one_clear_error(_ionwell("verify", str(tmp_path)), "no ledger.jsonl")

@@ -83,9 +83,7 @@ class CampaignPaths:
         """Step numbers that have a folder, ascending."""
         if not self.steps.is_dir():
             return []
-        return sorted(
-            int(p.name) for p in self.steps.iterdir() if p.is_dir() and p.name.isdigit()
-        )
+        return sorted(int(p.name) for p in self.steps.iterdir() if p.is_dir() and p.name.isdigit())
 
 
 def step_label(n: int) -> str:

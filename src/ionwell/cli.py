@@ -1,10 +1,10 @@
 """The ``ionwell`` command. The only module that prints.
 
-    ionwell run CONFIG.yaml            run or resume a campaign (drives Snakemake)
-    ionwell status campaigns/<name>    table of steps and where the campaign stands
-    ionwell place POTENTIAL.cube       one-shot: where would the next guest go?
-    ionwell verify campaigns/<name>    check the ledger against the files on disk
-    ionwell schema                     JSON Schema of the campaign config
+ionwell run CONFIG.yaml            run or resume a campaign (drives Snakemake)
+ionwell status campaigns/<name>    table of steps and where the campaign stands
+ionwell place POTENTIAL.cube       one-shot: where would the next guest go?
+ionwell verify campaigns/<name>    check the ledger against the files on disk
+ionwell schema                     JSON Schema of the campaign config
 """
 
 from __future__ import annotations
