@@ -137,3 +137,76 @@ def test_finding_model() -> None:
         Finding(severity="fatal", code="x", message="m", step=0)
     with pytest.raises(ValidationError):
         Finding(severity="info", code="Not Kebab", message="m", step=0)
+
+
+# --- host connectivity and edge crowding ------------------------------------------------------
+
+
+def test_host_fragments_counts_sheets_and_a_broken_bond():
+    from ionwell.checks import host_fragments
+
+    # two sheets of a bilayer are two bonded pieces (3.35 Å apart, far beyond any C–C bond)
+    bilayer = build_flake(FlakeBuilder(layers=2, shells=1))
+    hosts = list(range(len(bilayer)))
+    assert host_fragments(bilayer, hosts) == 2
+    # pull one CH unit of the first ring 3 Å outwards: its two C–C bonds break (C–C 1.42 Å,
+    # covalent radius of C 0.76 Å in ase.data, so 1.2×1.52 Å is the bond cut-off)
+    broken = bilayer.copy()
+    c0 = 0
+    h0 = next(
+        i
+        for i in range(len(broken))
+        if broken[i].symbol == "H" and broken.get_distance(c0, i) < 1.2
+    )
+    out = broken.positions[c0] - broken.positions[:6].mean(axis=0)
+    out /= np.linalg.norm(out)
+    broken.positions[[c0, h0]] += 3.0 * out
+    assert host_fragments(broken, hosts) == 3
+    found = step_findings(
+        4, broken, [], hosts, scf_converged=True, relax_converged=None, host_pieces=2
+    )
+    assert [f.code for f in found] == ["host-fragmented"]
+    assert not step_findings(
+        4, bilayer, [], hosts, scf_converged=True, relax_converged=None, host_pieces=2
+    )
+
+
+def test_edge_crowding_fires_for_rim_guests_only_on_a_particle():
+    from ase import Atoms
+
+    from ionwell.checks import edge_atoms
+
+    flake = build_flake(FlakeBuilder(layers=2, shells=3))  # circumcoronene bilayer: has interior
+    hosts = list(range(len(flake)))
+    edge = edge_atoms(flake, hosts)
+    # circumcoronene C54H18: 18 H and the 18 C that carry them are the edge (per sheet)
+    assert len(edge) == 2 * 36
+    z_mid = flake.positions[:, 2].mean()
+    rim_xy = flake.positions[[i for i in edge if flake[i].symbol == "H"]][:, :2]
+    rim_guests = Atoms(
+        "Li3", positions=[[*(0.8 * xy), z_mid] for xy in rim_xy[:3]]
+    )  # 80 % of the way to an edge hydrogen, in the gallery
+    centre_guests = Atoms("Li", positions=[[0.0, 0.0, z_mid]])
+    crowded = flake + rim_guests + centre_guests
+    g = list(range(len(flake), len(crowded)))
+    found = step_findings(
+        5, crowded, g, hosts, scf_converged=True, relax_converged=None, rim_alert=0.5
+    )
+    assert [f.code for f in found] == ["edge-crowding"]
+    assert "3 of 4 guests" in found[0].message
+    calm = flake + centre_guests
+    assert not step_findings(
+        5, calm, [len(flake)], hosts, scf_converged=True, relax_converged=None, rim_alert=0.5
+    )
+    # a molecule-sized host (benzene bilayer) has no interior: no rim alert at all
+    small = build_flake(FlakeBuilder(layers=2, shells=1))
+    both = small + Atoms("Li", positions=[[0.0, 0.0, small.positions[:, 2].mean()]])
+    assert not step_findings(
+        5,
+        both,
+        [len(small)],
+        list(range(len(small))),
+        scf_converged=True,
+        relax_converged=None,
+        rim_alert=0.0,
+    )

@@ -13,7 +13,15 @@ code                       severity  meaning
 ``atoms-too-close``        error     two atoms closer than ``min_distance`` (Å)
 ``guest-outside-envelope`` warning   a guest farther than ``envelope`` (Å) from every host atom
 ``guests-too-close``       warning   two guests closer than ``guest_alert`` (Å)
+``host-fragmented``        error     the host falls into more bonded pieces than it started with
+``edge-crowding``          warning   more than ``rim_alert`` of the guests sit at the rim
 =========================  ========  ===========================================================
+
+Bonds for the fragment count use ``ase.neighborlist.natural_cutoffs`` (covalent radii) scaled by
+:data:`BOND_SCALE`. The *rim* of a particle is its edge atoms — terminating hydrogens and heavy
+atoms with fewer heavy-atom neighbours than the host's most coordinated ones — and a guest is at
+the rim when it is within ``rim_distance`` Å of an edge atom. The rim check runs only on hosts
+that have an interior (heavy atoms farther than ``rim_distance`` from every edge atom).
 """
 
 from __future__ import annotations
@@ -30,13 +38,21 @@ from pydantic import BaseModel, ConfigDict, Field
 __all__ = [
     "MAX_PAIRS",
     "Finding",
+    "BOND_SCALE",
     "close_pair_findings",
+    "edge_atoms",
+    "host_fragments",
+    "rim_findings",
     "convergence_findings",
     "envelope_findings",
     "guest_pair_findings",
     "step_findings",
     "worst_severity",
 ]
+
+#: Bond if closer than this factor times the sum of ``natural_cutoffs`` radii (common practice
+#: for connectivity from covalent radii is a tolerance of 10–30 %).
+BOND_SCALE = 1.2
 
 #: At most this many close pairs are reported one by one per check; the rest are summarised.
 MAX_PAIRS = 10
@@ -208,6 +224,74 @@ def _check_indices(atoms: Atoms, name: str, indices: Sequence[int]) -> list[int]
     return out
 
 
+def _bond_graph(atoms: Atoms, indices: Sequence[int]):
+    from ase.neighborlist import natural_cutoffs
+    from scipy.sparse import coo_matrix
+
+    sub = atoms[list(indices)]
+    cut = [BOND_SCALE * c for c in natural_cutoffs(sub)]
+    i, j = neighbor_list("ij", sub, cut, self_interaction=False)
+    n = len(sub)
+    return sub, i, j, coo_matrix((np.ones(len(i)), (i, j)), shape=(n, n))
+
+
+def host_fragments(atoms: Atoms, host_indices: Sequence[int]) -> int:
+    """Number of bonded pieces the host atoms form (covalent-radius bonds, see BOND_SCALE)."""
+    from scipy.sparse.csgraph import connected_components
+
+    if len(host_indices) == 0:
+        return 0
+    *_, graph = _bond_graph(atoms, host_indices)
+    return int(connected_components(graph, directed=False)[0])
+
+
+def edge_atoms(atoms: Atoms, host_indices: Sequence[int]) -> list[int]:
+    """Host atoms at the rim: hydrogens, and heavy atoms below the host's top heavy coordination."""
+    hosts = list(host_indices)
+    if not hosts:
+        return []
+    sub, i, j, _ = _bond_graph(atoms, hosts)
+    heavy = sub.numbers > 1
+    heavy_pairs = heavy[i] & heavy[j]
+    coord = np.bincount(i[heavy_pairs], minlength=len(sub))
+    top = coord[heavy].max() if heavy.any() else 0
+    edge = ~heavy | (heavy & (coord < top))
+    return [hosts[k] for k in np.flatnonzero(edge)]
+
+
+def rim_findings(
+    step: int,
+    atoms: Atoms,
+    guest_indices: Sequence[int],
+    host_indices: Sequence[int],
+    rim_distance: float,
+    rim_alert: float,
+) -> list[Finding]:
+    """Warn when more than ``rim_alert`` (a fraction) of the guests sit at the rim."""
+    guests = list(guest_indices)
+    edge = edge_atoms(atoms, host_indices)
+    if not guests or not edge:
+        return []
+    heavy = [k for k in host_indices if atoms.numbers[k] > 1 and k not in set(edge)]
+    if not heavy or _distances(atoms, heavy, edge).min(axis=1).max() <= rim_distance:
+        return []  # no interior: a molecule-sized host is all rim
+    at_rim = _distances(atoms, guests, edge).min(axis=1) <= rim_distance
+    frac = float(at_rim.mean())
+    if frac <= rim_alert:
+        return []
+    return [
+        Finding(
+            severity="warning",
+            code="edge-crowding",
+            message=(
+                f"{int(at_rim.sum())} of {len(guests)} guests ({frac:.0%}) sit within "
+                f"{rim_distance:g} Å of the rim (alert above {rim_alert:.0%})"
+            ),
+            step=step,
+        )
+    ]
+
+
 def step_findings(
     step: int,
     atoms: Atoms,
@@ -219,11 +303,16 @@ def step_findings(
     min_distance: float = 0.7,
     envelope: float | None = None,
     guest_alert: float | None = None,
+    host_pieces: int | None = None,
+    rim_distance: float = 3.0,
+    rim_alert: float | None = None,
 ) -> list[Finding]:
     """All findings for one step's (relaxed) structure, errors first.
 
     ``envelope`` and ``guest_alert`` (Å) switch their checks off when None. Distance checks are
-    skipped when positions are not finite (that itself is an error finding).
+    skipped when positions are not finite (that itself is an error finding). ``host_pieces`` is
+    the fragment count of the pristine host (None: not checked); ``rim_alert`` the fraction of
+    guests at the rim above which a warning is given (None: not checked).
     """
     guests = _check_indices(atoms, "guest_indices", guest_indices)
     hosts = _check_indices(atoms, "host_indices", host_indices)
@@ -248,4 +337,20 @@ def step_findings(
             out += envelope_findings(step, atoms, guests, hosts, envelope)
         if guest_alert is not None:
             out += guest_pair_findings(step, atoms, guests, guest_alert)
+        if host_pieces is not None:
+            pieces = host_fragments(atoms, hosts)
+            if pieces > host_pieces:
+                out.append(
+                    Finding(
+                        severity="error",
+                        code="host-fragmented",
+                        message=(
+                            f"the host is in {pieces} bonded pieces, it started with "
+                            f"{host_pieces}: a bond broke"
+                        ),
+                        step=step,
+                    )
+                )
+        if rim_alert is not None:
+            out += rim_findings(step, atoms, guests, hosts, rim_distance, rim_alert)
     return sorted(out, key=lambda f: -_RANK[f.severity])

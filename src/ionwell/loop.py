@@ -381,6 +381,7 @@ def summarize(root: str | Path) -> CampaignSummary:
     frames = []
     for rec in records:
         a = read(paths.step(rec.step) / "relaxed.extxyz")
+        a.calc = None
         a.info = {"step": rec.step, "guests": rec.guests, "energy": rec.energy}
         frames.append(a)
     tmp = paths.trajectory.with_name(".trajectory.extxyz.tmp")
