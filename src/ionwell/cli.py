@@ -132,6 +132,23 @@ def cmd_verify(args: argparse.Namespace) -> int:
     return 1
 
 
+def cmd_replay(args: argparse.Namespace) -> int:
+    from ionwell.replay import replay
+
+    steps = replay(args.campaign)
+    if not steps:
+        raise IonwellError(f"{args.campaign}: no finished step to replay")
+    differ = [s for s in steps if s.status in ("differs", "cannot replay")]
+    for s in steps:
+        print(f"step {s.step:4d}  {s.status:<14} {s.message}")
+    if differ:
+        first = differ[0]
+        print(f"replay: step {first.step} {first.status}: {first.message}", file=sys.stderr)
+        return 1
+    print(f"ok: every recorded decision ({len(steps)} steps) is re-derived exactly")
+    return 0
+
+
 def cmd_schema(args: argparse.Namespace) -> int:
     from ionwell.config import campaign_schema
 
@@ -169,6 +186,10 @@ def build_parser() -> argparse.ArgumentParser:
     v = sub.add_parser("verify", help="check the ledger against the files on disk")
     v.add_argument("campaign", help="campaign folder")
     v.set_defaults(func=cmd_verify)
+
+    rp = sub.add_parser("replay", help="re-derive every decision from the stored maps")
+    rp.add_argument("campaign", help="campaign folder")
+    rp.set_defaults(func=cmd_replay)
 
     sc = sub.add_parser("schema", help="print the JSON Schema of campaign configs")
     sc.add_argument("-o", "--output", default=None, help="write to this file")

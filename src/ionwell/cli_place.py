@@ -1,12 +1,17 @@
 """``ionwell place``: find the wells of one potential map and say where a guest would go.
 
     ionwell place POTENTIAL.cube [--structure FILE] [--guest EL] [--exclusion EL=ANGSTROM ...]
-                  [--within ANGSTROM] [--sign auto|potential|electron] [--count N] [--json]
+                  [--within ANGSTROM] [--sign auto|potential|electron] [--galleries]
+                  [--rule deepest|thermal] [--count N] [--separation ANGSTROM]
+                  [--temperature K] [--seed N] [--step N] [--wells N] [--json]
 
 The map is a Gaussian cube (atoms taken from it unless ``--structure`` is given) or a ``.npz``
 grid written by ionwell (then ``--structure`` is required). Positions are printed in Å in the
-map's own Cartesian frame, potentials in volts. Exit status 0 when a site is chosen, 1 when the
-map has no admissible well; errors are raised as :class:`~ionwell.errors.IonwellError`.
+map's own Cartesian frame, potentials in volts. The choice is made by
+:func:`ionwell.placement.decide` with the settings a campaign would use, so what this command
+prints is what a campaign step would do with the same map. Exit status 0 when a site is chosen,
+1 when the map has no admissible well; errors are raised as
+:class:`~ionwell.errors.IonwellError`.
 """
 
 from __future__ import annotations
@@ -17,12 +22,25 @@ import math
 from pathlib import Path
 
 from ase import Atoms
+from pydantic import ValidationError
 
 from ionwell import grid as gridmod
-from ionwell.errors import GridError, StructureError
-from ionwell.placement import Decision, place
+from ionwell.config import PlacementConfig
+from ionwell.errors import GridError, PlacementError, StructureError
+from ionwell.placement import Decision, decide
 
 __all__ = ["add_parser", "run"]
+
+# PlacementConfig field → the option that sets it, for error messages
+_OPTION = {
+    "exclusion": "--exclusion",
+    "within": "--within",
+    "candidates": "--wells",
+    "rule": "--rule",
+    "per_step": "--count",
+    "separation": "--separation",
+    "temperature": "--temperature",
+}
 
 
 def _exclusion_item(text: str) -> tuple[str, float]:
@@ -48,6 +66,16 @@ def _positive(text: str) -> float:
     return value
 
 
+def _kelvin(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        value = math.nan
+    if not (math.isfinite(value) and value >= 0):
+        raise argparse.ArgumentTypeError(f"expected a temperature of at least 0 K, got {text!r}")
+    return value
+
+
 def _count(text: str) -> int:
     try:
         value = int(text)
@@ -58,6 +86,16 @@ def _count(text: str) -> int:
     return value
 
 
+def _natural(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        value = -1
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"expected a whole number of at least 0, got {text!r}")
+    return value
+
+
 def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParser:
     """Register the ``place`` subcommand on an argparse subparsers object."""
     p = subparsers.add_parser(
@@ -65,8 +103,10 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
         help="list the wells of a potential map and the site a guest would take",
         description=(
             "Read an electrostatic potential map, keep the grid points a guest may occupy "
-            "(clear of every atom by an exclusion distance, close enough to the host) and list "
-            "the deepest local minima there. The deepest one is the chosen site."
+            "(clear of every atom by an exclusion distance, close enough to the host, and with "
+            "--galleries between two adjacent layers) and list the deepest local minima there. "
+            "The placement rule picks the site: the deepest well, or a Boltzmann-weighted "
+            "draw among the wells (thermal)."
         ),
         epilog="Exit status: 0 when a site is chosen, 1 when no admissible well exists.",
     )
@@ -107,7 +147,56 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
         "the potential convention). Default: auto",
     )
     p.add_argument(
+        "--galleries",
+        action="store_true",
+        help="admit only points between two adjacent layers of the host (layers detected "
+        "from the atoms heavier than hydrogen)",
+    )
+    p.add_argument(
+        "--rule",
+        choices=("deepest", "thermal", "screened"),
+        default="deepest",
+        help="placement rule: 'deepest' well, or 'thermal' (Boltzmann-weighted draw at "
+        "--temperature, seeded by --seed and --step). 'screened' needs engine energies and "
+        "runs only inside a campaign. Default: deepest",
+    )
+    p.add_argument(
         "--count",
+        metavar="N",
+        type=_count,
+        default=1,
+        help="how many guests to place, at wells at least --separation apart (default: 1)",
+    )
+    p.add_argument(
+        "--separation",
+        metavar="ANGSTROM",
+        type=_positive,
+        default=2.5,
+        help="minimum distance between guests placed together, Å (default: 2.5)",
+    )
+    p.add_argument(
+        "--temperature",
+        metavar="K",
+        type=_kelvin,
+        default=300.0,
+        help="temperature of the thermal rule, K; 0 gives the deepest well (default: 300)",
+    )
+    p.add_argument(
+        "--seed",
+        metavar="N",
+        type=_natural,
+        default=0,
+        help="seed of the thermal rule's random draw (default: 0)",
+    )
+    p.add_argument(
+        "--step",
+        metavar="N",
+        type=_natural,
+        default=0,
+        help="step number the thermal draw is seeded with, as in a campaign (default: 0)",
+    )
+    p.add_argument(
+        "--wells",
         metavar="N",
         type=_count,
         default=10,
@@ -151,6 +240,29 @@ def _load(args: argparse.Namespace) -> tuple[gridmod.Grid, Atoms, str]:
     return gridmod.orient(grid, atoms, sign), atoms, sign
 
 
+def _settings(args: argparse.Namespace) -> PlacementConfig:
+    """The placement settings the options describe (the map is already oriented)."""
+    try:
+        return PlacementConfig(
+            rule=args.rule,
+            exclusion=dict(args.exclusion),
+            within=args.within,
+            sign="potential",
+            candidates=args.wells,
+            per_step=args.count,
+            separation=args.separation,
+            temperature=args.temperature,
+            galleries_only=args.galleries,
+        )
+    except ValidationError as err:
+        lines = []
+        for e in err.errors():
+            field = str(e["loc"][0]) if e["loc"] else ""
+            msg = e["msg"].removeprefix("Value error, ")
+            lines.append(f"{_OPTION.get(field, field or 'options')}: {msg}")
+        raise PlacementError("; ".join(lines)) from None
+
+
 def _site(s) -> dict:
     return {"position": [float(x) for x in s.position], "potential": float(s.potential)}
 
@@ -163,41 +275,77 @@ def _print_table(args: argparse.Namespace, decision: Decision, sign: str) -> Non
     )
     ex = ", ".join(f"{el} {r:.2f}" for el, r in decision.exclusion.items())
     env = "none" if decision.within is None else f"{decision.within:g} Å"
-    print(f"exclusion (Å): {ex or 'none'}; envelope: {env}")
+    line = f"exclusion (Å): {ex or 'none'}; envelope: {env}"
+    gal = decision.region.galleries if decision.region is not None else None
+    if gal is not None:
+        line += (
+            f"; galleries: {len(gal.intervals)} between {len(gal.layer_heights)} layers "
+            f"(margin {gal.margin:g} Å)"
+        )
+    print(line)
+    rule = decision.rule
+    if rule == "thermal":
+        rule += f" at {decision.temperature:g} K, seed {decision.seed}, step {decision.step}"
+    guests = f"{decision.count} guest{'s' if decision.count > 1 else ''}"
+    if decision.count > 1:
+        guests += f" at least {decision.separation:g} Å apart"
+    print(f"rule: {rule}; {guests}")
     if not decision.candidates:
         print(f"no site chosen: {decision.reason}")
         return
+    probs = decision.probabilities
     print()
-    print(
-        f"{'rank':>4}  {'x (Å)':>10}  {'y (Å)':>10}  {'z (Å)':>10}  {'V (V)':>10}  {'depth (V)':>10}"
+    head = (
+        f"{'rank':>4}  {'x (Å)':>10}  {'y (Å)':>10}  {'z (Å)':>10}  {'V (V)':>10}  "
+        f"{'depth (V)':>10}"
     )
+    if probs is not None:
+        head += f"  {'prob.':>7}"
+    print(head + "  note")
     deepest = decision.candidates[0].potential
+    order = {w: n for n, w in enumerate(decision.chosen_wells, 1)}
     for rank, s in enumerate(decision.candidates, 1):
         x, y, z = s.position
-        print(
+        row = (
             f"{rank:>4}  {x:>10.4f}  {y:>10.4f}  {z:>10.4f}  {s.potential:>10.4f}  "
             f"{s.potential - deepest:>10.4f}"
         )
+        if probs is not None:
+            row += f"  {probs[rank - 1]:>7.3f}"
+        notes = []
+        if rank - 1 in order:
+            notes.append("chosen" if decision.count == 1 else f"chosen #{order[rank - 1]}")
+        if s.degenerate:
+            notes.append("near-degenerate")
+        if s.edge:
+            notes.append("edge")
+        print(row + ("  " + ", ".join(notes) if notes else ""))
     print()
-    c = decision.chosen[0]
-    print(
-        "chosen: well 1 at ({:.4f}, {:.4f}, {:.4f}) Å, {:.4f} V — {}".format(
-            *c.position, c.potential, decision.reason
+    if any(s.degenerate for s in decision.candidates):
+        print(f"near-degenerate: within {decision.degenerate:g} V of the deepest well")
+    if any(s.edge for s in decision.candidates):
+        print("edge: lowest point at the edge of the admissible region (may fall further beyond)")
+    for n, (w, c) in enumerate(zip(decision.chosen_wells, decision.chosen, strict=True), 1):
+        label = "chosen" if decision.count == 1 else f"chosen #{n}"
+        print(
+            "{}: well {} at ({:.4f}, {:.4f}, {:.4f}) Å, {:.4f} V".format(
+                label, w + 1, *c.position, c.potential
+            )
         )
-    )
+    print(f"why: {decision.reason}")
 
 
 def run(args: argparse.Namespace) -> int:
     """Run ``ionwell place``; returns the exit status (0: a site chosen, 1: none)."""
+    if args.rule == "screened":
+        raise PlacementError(
+            "--rule screened ranks the wells by engine energies, so it needs a "
+            "campaign (its engine computes them); set placement.rule: screened in the campaign "
+            "config, or use --rule deepest or --rule thermal here"
+        )
+    settings = _settings(args)
     grid, atoms, sign = _load(args)
-    decision = place(
-        grid,
-        atoms,
-        args.guest,
-        exclusion=dict(args.exclusion) or None,
-        within=args.within,
-        candidates=args.count,
-    )
+    decision = decide(grid, atoms, args.guest, settings, step=args.step, seed=args.seed)
     if args.json:
         out = {
             "source": str(args.potential),
@@ -206,12 +354,23 @@ def run(args: argparse.Namespace) -> int:
             "sign": sign,
             "sites": [_site(s) for s in decision.candidates],
             "chosen": [_site(s) for s in decision.chosen],
+            "chosen_wells": decision.chosen_wells,
+            "near_degenerate": [i for i, s in enumerate(decision.candidates) if s.degenerate],
             "reason": decision.reason,
             "admissible_fraction": decision.admissible_fraction,
             "exclusion": decision.exclusion,
             "within": decision.within,
+            "count": decision.count,
+            "separation": decision.separation,
             "grid_shape": decision.grid_shape,
         }
+        if decision.rule == "thermal":
+            out |= {
+                "temperature": decision.temperature,
+                "seed": decision.seed,
+                "step": decision.step,
+                "probabilities": decision.probabilities,
+            }
         print(json.dumps(out))
     else:
         _print_table(args, decision, sign)

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import difflib
 import json
+import math
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
@@ -20,12 +21,14 @@ from ionwell.errors import ConfigError
 
 __all__ = [
     "Campaign",
+    "ChecksConfig",
     "FlakeBuilder",
     "GuestConfig",
     "HostConfig",
     "PlacementConfig",
     "PotentialGridConfig",
     "PyscfEngineConfig",
+    "RemedyConfig",
     "RelaxConfig",
     "StopConfig",
     "campaign_schema",
@@ -129,10 +132,60 @@ class PyscfEngineConfig(_Model):
 EngineConfig = Annotated[PyscfEngineConfig, Field(discriminator="kind")]
 
 
-class PlacementConfig(_Model):
-    """Where the next guest goes: the deepest admissible well of the potential map."""
+class BoxRegion(_Model):
+    """An axis-aligned box of Cartesian positions, Å; a point on a face counts as inside."""
 
-    rule: Literal["deepest"] = "deepest"
+    lower: tuple[float, float, float] = Field(description="corner with the smallest x, y, z, Å")
+    upper: tuple[float, float, float] = Field(description="corner with the largest x, y, z, Å")
+
+    @model_validator(mode="after")
+    def _ordered(self) -> BoxRegion:
+        for name, corner in (("lower", self.lower), ("upper", self.upper)):
+            if not all(math.isfinite(x) for x in corner):
+                raise ValueError(f"box {name} corner must hold finite numbers (Å), got {corner}")
+        if not all(lo < hi for lo, hi in zip(self.lower, self.upper, strict=True)):
+            raise ValueError(
+                f"box upper corner must exceed the lower corner on every axis (x, y, z in Å); "
+                f"got lower={list(self.lower)}, upper={list(self.upper)}"
+            )
+        return self
+
+
+class SphereRegion(_Model):
+    """A ball of Cartesian positions, Å; periodic images count on periodic axes."""
+
+    centre: tuple[float, float, float] = Field(description="centre x, y, z, Å")
+    radius: float = Field(gt=0.0, le=1000.0, description="radius, Å")
+
+    @field_validator("centre")
+    @classmethod
+    def _finite(cls, v: tuple[float, float, float]) -> tuple[float, float, float]:
+        if not all(math.isfinite(x) for x in v):
+            raise ValueError(f"sphere centre must hold finite numbers (Å), got {v}")
+        return v
+
+
+class ScreenConfig(_Model):
+    """Settings of the ``screened`` rule: which wells get an engine energy, and which engine."""
+
+    top: int = Field(3, ge=1, le=50, description="how many of the deepest wells are screened")
+    engine: EngineConfig | None = Field(
+        None, description="engine for the candidate energies (default: the campaign's engine)"
+    )
+
+
+class PlacementConfig(_Model):
+    """Where the next guest goes: admissible region, wells of the potential map, placement rule.
+
+    ``deepest`` takes the lowest well; ``thermal`` draws among the recorded wells with Boltzmann
+    weights ``exp(-z·V/kT)`` (seeded from the campaign seed and the step); ``screened`` computes
+    the energy of each of the ``screen.top`` deepest wells with an engine and takes the lowest.
+    ``per_step`` guests go in per step, at least ``separation`` apart.
+    """
+
+    rule: Literal["deepest", "thermal", "screened"] = Field(
+        "deepest", description="placement rule: deepest, thermal or screened"
+    )
     exclusion: dict[str, float] = Field(
         default_factory=dict,
         description="minimum guest distance to atoms of each element, Å (defaults from radii)",
@@ -140,6 +193,39 @@ class PlacementConfig(_Model):
     within: float = Field(3.0, gt=0.0, description="host envelope: max distance to a host atom, Å")
     sign: Literal["auto", "potential", "electron"] = "potential"
     candidates: int = Field(10, ge=1, le=1000, description="how many wells to record")
+    temperature: float = Field(
+        300.0, ge=0.0, le=100000.0, description="thermal rule temperature, K (0: deepest)"
+    )
+    ion_charge: int = Field(
+        1, ge=1, le=4, description="formal charge z of the guest ion in the thermal weights"
+    )
+    per_step: int = Field(1, ge=1, le=100, description="guests inserted per step")
+    separation: float = Field(
+        2.5, gt=0.0, le=100.0, description="minimum distance between guests placed together, Å"
+    )
+    merge: float = Field(
+        0.3, ge=0.0, le=5.0, description="wells closer than this are one well (the deeper), Å"
+    )
+    degenerate: float = Field(
+        0.01, ge=0.0, le=10.0, description="wells this close to the deepest are near-degenerate, V"
+    )
+    galleries_only: bool = Field(
+        False, description="admit only points between two adjacent layers of the host"
+    )
+    gallery_margin: float = Field(
+        0.5, ge=0.0, le=10.0, description="minimum distance of a gallery point from a layer, Å"
+    )
+    layer_tolerance: float = Field(
+        0.8, gt=0.0, le=10.0, description="height gap that separates two layers, Å"
+    )
+    boxes: list[BoxRegion] = Field(
+        default_factory=list, description="user boxes; with boxes or spheres a site must be in one"
+    )
+    spheres: list[SphereRegion] = Field(
+        default_factory=list,
+        description="user spheres; with boxes or spheres a site must be in one",
+    )
+    screen: ScreenConfig = ScreenConfig()
 
     @field_validator("exclusion")
     @classmethod
@@ -149,6 +235,15 @@ class PlacementConfig(_Model):
             if not 0.0 < r < 10.0:
                 raise ValueError(f"exclusion for {el} must be between 0 and 10 Å, got {r}")
         return v
+
+    @model_validator(mode="after")
+    def _consistent(self) -> PlacementConfig:
+        if self.rule == "screened" and self.screen.top < self.per_step:
+            raise ValueError(
+                f"screen.top ({self.screen.top}) must be at least per_step ({self.per_step}) for "
+                "rule 'screened': every guest placed needs a screened well"
+            )
+        return self
 
 
 class RelaxConfig(_Model):
@@ -162,6 +257,37 @@ class RelaxConfig(_Model):
     max_step: float = Field(0.2, gt=0.0, le=2.0, description="largest displacement per step, Å")
 
 
+class ChecksConfig(_Model):
+    """Per-step checks and their bounds (Å unless stated)."""
+
+    min_distance: float = Field(0.7, gt=0.0, description="error when two atoms are closer")
+    envelope: float | None = Field(
+        None, gt=0.0, description="warn when a guest is farther from the host (default: within)"
+    )
+    guest_alert: float | None = Field(1.8, gt=0.0, description="warn when two guests are closer")
+    connectivity: bool = Field(True, description="error when the host falls into more pieces")
+    rim_distance: float = Field(3.0, gt=0.0, description="a guest this close to an edge atom")
+    rim_alert: float | None = Field(
+        0.6, ge=0.0, le=1.0, description="warn when more than this fraction of guests is at the rim"
+    )
+
+
+class RemedyConfig(_Model):
+    """What the loop tries before a failed check stops the campaign (each try is recorded)."""
+
+    scf: list[Literal["more_cycles", "level_shift", "smearing"]] = Field(
+        default_factory=lambda: ["more_cycles", "level_shift", "smearing"],
+        description="SCF retries, in order, when the SCF did not converge",
+    )
+    more_cycles: int = Field(300, ge=1, description="SCF iteration cap of the 'more_cycles' retry")
+    level_shift: float = Field(0.3, gt=0.0, description="level shift of that retry, hartree")
+    smearing: float = Field(0.1, gt=0.0, description="Fermi smearing of that retry, eV")
+    reject_site: bool = Field(
+        True, description="on an error finding, reject the newest guest's site, take the next well"
+    )
+    max_rejects: int = Field(3, ge=0, description="sites rejected at most per step")
+
+
 class StopConfig(_Model):
     """Stop rule: the campaign ends at the first condition met."""
 
@@ -170,10 +296,9 @@ class StopConfig(_Model):
         None, gt=0.0, description="stop at this x (guests per host formula unit)"
     )
     max_steps: int = Field(50, ge=0, le=100000, description="stop after this step number")
-
-    @model_validator(mode="after")
-    def _has_target(self) -> StopConfig:
-        return self
+    well_above: float | None = Field(
+        None, description="stop when the deepest admissible well lies above this potential, V"
+    )
 
 
 class Campaign(_Model):
@@ -187,6 +312,8 @@ class Campaign(_Model):
     engine: EngineConfig = PyscfEngineConfig()
     placement: PlacementConfig = PlacementConfig()
     relax: RelaxConfig = RelaxConfig()
+    checks: ChecksConfig = ChecksConfig()
+    remedies: RemedyConfig = RemedyConfig()
     stop: StopConfig = StopConfig()
 
 

@@ -25,11 +25,12 @@ that the mean atomic position is the origin. Atom tags hold the sheet index (0 =
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
 from ase import Atoms
+from pydantic import BaseModel, ConfigDict
 from scipy.spatial import cKDTree
 
 from ionwell.config import FlakeBuilder, HostConfig
@@ -37,8 +38,10 @@ from ionwell.errors import StructureError
 
 __all__ = [
     "MIN_ATOM_DISTANCE",
+    "Layers",
     "build_flake",
     "build_sheet",
+    "detect_layers",
     "host_formula_units",
     "load_host",
     "read_structure",
@@ -305,3 +308,299 @@ def host_formula_units(atoms: Atoms, formula_unit: Mapping[str, int] | None) -> 
             "element, e.g. {C: 6}"
         )
     return values[0]
+
+
+# ---------------------------------------------------------------------------------------------
+# layer detection
+
+_N_COARSE = 1200  # directions on the half sphere searched for the stacking normal
+_MIN_PERIOD = 0.5  # Å: a height period shorter than this means "not a lattice-plane normal"
+
+
+class Layers(BaseModel):
+    """Layers of a host along a stacking normal, from :func:`detect_layers`.
+
+    Heights are ``position · normal`` (Å). Layer ``i`` spans the heights ``bottoms[i]`` to
+    ``tops[i]`` of the atoms that make it up; ``heights[i]`` is their mean. Layers are listed in
+    ascending height. With ``period`` set (a periodic cell, the normal a lattice-plane normal),
+    heights repeat every ``period`` Å and are quoted in the frame ``[bottoms[0], bottoms[0] +
+    period)``; the gap between the last layer and the first layer's image is a gallery too.
+    """
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    normal: list[float]
+    heights: list[float]
+    bottoms: list[float]
+    tops: list[float]
+    period: float | None = None
+    indices: list[int]
+    layer_of: list[int]
+
+    @property
+    def count(self) -> int:
+        return len(self.heights)
+
+    def height(self, positions: np.ndarray) -> np.ndarray:
+        """Heights (Å) of Cartesian ``positions`` along the normal, in the layers' frame."""
+        h = np.asarray(positions, dtype=float) @ np.asarray(self.normal)
+        if self.period is not None and self.bottoms:
+            base = self.bottoms[0]
+            h = base + np.mod(h - base, self.period)
+        return h
+
+    def galleries(self, margin: float = 0.0) -> list[tuple[float, float]]:
+        """Open height intervals (Å) between adjacent layers, shrunk by ``margin`` on each side.
+
+        Gallery ``i`` lies between layer ``i`` and layer ``i + 1``; with a period, the last one
+        lies between the last layer and the image of the first. Intervals that the margin closes
+        are kept as empty ``(lo, lo)`` entries so that gallery numbers stay those of the layers.
+        """
+        pairs = list(zip(self.tops[:-1], self.bottoms[1:], strict=True))
+        if self.period is not None and self.tops:
+            pairs.append((self.tops[-1], self.bottoms[0] + self.period))
+        out = []
+        for top, bottom in pairs:
+            lo, hi = top + margin, bottom - margin
+            out.append((lo, hi) if hi > lo else (lo, lo))
+        return out
+
+    def gallery_of(self, positions: np.ndarray, margin: float = 0.0) -> np.ndarray:
+        """Gallery number of each position (see :meth:`galleries`), -1 outside every gallery."""
+        h = self.height(positions)
+        out = np.full(h.shape, -1, dtype=np.int64)
+        for i, (lo, hi) in enumerate(self.galleries(margin)):
+            out[(h > lo) & (h < hi)] = i
+        return out
+
+
+def _unit_sign(n: np.ndarray) -> np.ndarray:
+    """``n`` normalised, with its largest-magnitude component positive (a fixed orientation)."""
+    n = np.asarray(n, dtype=float)
+    n = n / np.linalg.norm(n)
+    k = int(np.argmax(np.abs(n) - 1e-12 * np.arange(3)))  # first of near-equal components
+    return -n if n[k] < 0 else n
+
+
+def _fibonacci_half_sphere(count: int) -> np.ndarray:
+    """``count`` nearly uniform unit vectors with z >= 0 (a Fibonacci lattice)."""
+    k = np.arange(count) + 0.5
+    z = 1.0 - k / count  # uniform in (0, 1]
+    phi = k * math.pi * (3.0 - math.sqrt(5.0))
+    r = np.sqrt(1.0 - z * z)
+    return np.column_stack([r * np.cos(phi), r * np.sin(phi), z])
+
+
+def _largest_gaps(heights: np.ndarray) -> np.ndarray:
+    """Largest gap between consecutive sorted heights, for each row of ``heights`` (m, n)."""
+    h = np.sort(heights, axis=-1)
+    return np.diff(h, axis=-1).max(axis=-1) if h.shape[-1] > 1 else np.zeros(h.shape[:-1])
+
+
+def _real_gcd(values: list[float], eps: float = 1e-3) -> float | None:
+    """Largest d with every value an integer multiple of d (within ``eps`` Å), or None."""
+    d = 0.0
+    for v in sorted(abs(x) for x in values):
+        a, b = v, d
+        while b > eps:
+            a, b = b, a % b
+            if b < eps or a - b < eps:
+                b = 0.0
+        d = a
+    return d if d >= _MIN_PERIOD else None
+
+
+def _height_period(atoms: Atoms, normal: np.ndarray) -> float | None:
+    """Period of the heights along ``normal`` set by the periodic cell vectors, if any."""
+    comps = [
+        float(atoms.cell[i] @ normal)
+        for i in range(3)
+        if atoms.pbc[i] and np.linalg.norm(atoms.cell[i]) > 0
+    ]
+    comps = [c for c in comps if abs(c) > 1e-3]
+    return _real_gcd(comps) if comps else None
+
+
+def _cluster(h: np.ndarray, tol: float, period: float | None) -> tuple[np.ndarray, np.ndarray]:
+    """Split heights into layers at gaps wider than ``tol``.
+
+    Returns the heights in the layers' frame (unwrapped after the largest gap when periodic) and
+    the layer label of each, labels ascending with height.
+    """
+    if period is not None:
+        h = np.mod(h, period)
+    order = np.argsort(h, kind="stable")
+    hs = h[order]
+    if period is not None:
+        gaps = np.diff(np.r_[hs, hs[0] + period])  # gap after each sorted height, wrap included
+        # start after the widest gap; on a tie, after the last of them (the wrap gap if it ties)
+        start = (int(np.flatnonzero(gaps >= gaps.max() - 1e-9)[-1]) + 1) % len(hs)
+        order = np.r_[order[start:], order[:start]]
+        hs = np.r_[hs[start:], hs[:start] + period]
+        h = h.copy()
+        h[order[len(hs) - start :]] += period if start else 0.0
+    labels_sorted = np.r_[0, np.cumsum(np.diff(hs) > tol)]
+    labels = np.empty(len(h), dtype=np.int64)
+    labels[order] = labels_sorted
+    return h, labels
+
+
+def _plane_refine(points: np.ndarray, labels: np.ndarray, normal: np.ndarray) -> np.ndarray:
+    """Common normal of parallel planar layers: the smallest singular vector of the atom positions
+    each taken relative to its own layer's mean. Keeps ``normal`` when the layers do not span
+    a plane (fewer than three non-collinear atoms per layer in total)."""
+    centred = points.copy()
+    for lab in np.unique(labels):
+        sel = labels == lab
+        centred[sel] -= centred[sel].mean(axis=0)
+    _, s, vt = np.linalg.svd(centred, full_matrices=False)
+    if len(s) < 3 or s[1] <= 1e-6 or s[1] < 1e-3 * s[0]:
+        return normal
+    n = vt[-1]
+    return n if n @ normal >= 0 else -n
+
+
+def _spherical(theta: float, phi: float) -> np.ndarray:
+    return np.array(
+        [math.sin(theta) * math.cos(phi), math.sin(theta) * math.sin(phi), math.cos(theta)]
+    )
+
+
+def _search_normal(points: np.ndarray) -> np.ndarray:
+    """Direction along which the heights of ``points`` show the widest empty gap.
+
+    Layered atoms leave the interlayer spacing empty along the stacking normal and much smaller
+    gaps along any in-plane direction. A coarse search over the half sphere (plus the principal
+    axes of the positions) is followed by a pattern search on the sphere around the best few.
+    """
+    centred = points - points.mean(axis=0)
+    _, _, vt = np.linalg.svd(centred, full_matrices=False)
+    dirs = np.vstack([vt, _fibonacci_half_sphere(_N_COARSE)])
+    sample = centred if len(centred) <= 4000 else centred[:: len(centred) // 4000 + 1]
+    score = _largest_gaps(dirs @ sample.T)
+    best = np.argsort(-score, kind="stable")[:3]
+
+    def gap(n: np.ndarray) -> float:
+        return float(_largest_gaps((centred @ n)[None, :])[0])
+
+    found = []
+    for b in best:
+        n = dirs[b] / np.linalg.norm(dirs[b])
+        theta, phi = math.acos(max(-1.0, min(1.0, n[2]))), math.atan2(n[1], n[0])
+        value = gap(n)
+        step = math.radians(2.0)
+        while step > math.radians(0.01):
+            moved = False
+            for dt, dp in ((1, 0), (-1, 0), (0, 1), (0, -1), (1, 1), (1, -1), (-1, 1), (-1, -1)):
+                t2 = theta + dt * step
+                p2 = phi + dp * step / max(math.sin(theta), 0.05)
+                v = gap(_spherical(t2, p2))
+                if v > value + 1e-12:
+                    theta, phi, value, moved = t2, p2, v, True
+                    break
+            if not moved:
+                step *= 0.5
+        found.append((value, _spherical(theta, phi)))
+    found.sort(key=lambda t: -t[0])
+    return found[0][1]
+
+
+def detect_layers(atoms: Atoms, indices: Sequence[int] | None = None, tol: float = 0.8) -> Layers:
+    """Find the stacking normal of a layered host and the layers along it.
+
+    ``indices`` selects the atoms that make up the layers (default: every atom heavier than
+    hydrogen, or all atoms when there are only hydrogens). ``tol`` (Å) is the height gap that
+    separates two layers: sorted heights along the normal split wherever consecutive ones
+    differ by more than ``tol``.
+
+    The normal: with at least two periodic cell axes, the layers are taken parallel to a cell
+    face and the normal is the face normal (``a×b``, ``b×c`` or ``c×a``) along which the heights
+    show the widest empty gap, counted around the period. Otherwise the direction with the
+    widest empty gap between heights is searched (coarse half-sphere search, then a local
+    pattern search) and refined as the common normal of the layers found along it (smallest
+    singular vector of the positions relative to their own layer's mean, exact for flat
+    parallel layers). The normal is a unit vector whose largest component is positive.
+
+    ``layer_of`` gives, for every atom of ``atoms``, the layer whose height band it lies in or
+    within ``tol / 2`` of, else -1 (e.g. guests in a gallery).
+
+    Raises:
+        StructureError: with fewer than three selected atoms in a non-periodic host, or a
+            selection index out of range.
+    """
+    n_atoms = len(atoms)
+    if indices is None:
+        heavy = np.flatnonzero(atoms.numbers > 1)
+        idx = heavy if heavy.size else np.arange(n_atoms)
+    else:
+        idx = np.asarray([int(i) for i in indices], dtype=np.int64)
+        bad = idx[(idx < -n_atoms) | (idx >= n_atoms)]
+        if bad.size:
+            raise StructureError(
+                f"layer detection: atom indices {bad[:5].tolist()} are out of range for "
+                f"{n_atoms} atoms"
+            )
+        idx = np.unique(np.mod(idx, max(n_atoms, 1)))
+    if not (math.isfinite(tol) and tol > 0):
+        raise StructureError(f"layer detection: tol must be a positive distance in Å, got {tol}")
+    points = np.asarray(atoms.positions, dtype=float)[idx]
+    periodic = [i for i in range(3) if atoms.pbc[i] and np.linalg.norm(atoms.cell[i]) > 0]
+
+    if len(periodic) >= 2 and abs(atoms.cell.volume) > 1e-9 and len(points) >= 1:
+        best = None
+        for a, b in ((0, 1), (1, 2), (2, 0)):
+            n = _unit_sign(np.cross(atoms.cell[a], atoms.cell[b]))
+            period = _height_period(atoms, n)
+            h, _ = _cluster(points @ n, tol, period)
+            hs = np.sort(h)
+            gaps = np.diff(hs)
+            if period is not None:
+                gaps = np.r_[gaps, hs[0] + period - hs[-1]]
+            score = float(gaps.max()) if gaps.size else 0.0
+            if best is None or score > best[0] + 1e-9:
+                best = (score, n, period)
+        assert best is not None
+        _, normal, period = best
+    else:
+        if len(points) < 3:
+            raise StructureError(
+                f"layer detection needs at least three atoms to fit a stacking normal, got "
+                f"{len(points)}"
+            )
+        period = None
+        normal = _search_normal(points)
+        for _ in range(3):
+            _, labels = _cluster(points @ normal, tol, None)
+            refined = _plane_refine(points, labels, normal)
+            if np.allclose(refined, normal, atol=1e-12):
+                break
+            normal = refined
+        normal = _unit_sign(normal)
+
+    h, labels = _cluster(points @ normal, tol, period)
+    n_layers = int(labels.max()) + 1 if labels.size else 0
+    heights = [float(h[labels == i].mean()) for i in range(n_layers)]
+    bottoms = [float(h[labels == i].min()) for i in range(n_layers)]
+    tops = [float(h[labels == i].max()) for i in range(n_layers)]
+    layers = Layers(
+        normal=[float(x) + 0.0 for x in normal],
+        heights=heights,
+        bottoms=bottoms,
+        tops=tops,
+        period=period,
+        indices=idx.tolist(),
+        layer_of=[-1] * n_atoms,
+    )
+    # every atom: the layer whose band holds it (or lies within tol/2 of it)
+    ha = layers.height(np.asarray(atoms.positions, dtype=float))
+    lo, hi = np.asarray(bottoms), np.asarray(tops)
+    dist = np.maximum(np.maximum(lo[None, :] - ha[:, None], ha[:, None] - hi[None, :]), 0.0)
+    if period is not None:  # the band of the first layer also sits one period up, and so on
+        up = np.maximum(np.maximum(lo + period - ha[:, None], ha[:, None] - hi - period), 0.0)
+        down = np.maximum(np.maximum(lo - period - ha[:, None], ha[:, None] - hi + period), 0.0)
+        dist = np.minimum(dist, np.minimum(up, down))
+    near = dist.argmin(axis=1) if n_layers else np.zeros(n_atoms, dtype=np.int64)
+    ok = dist[np.arange(n_atoms), near] <= tol / 2 if n_layers else np.zeros(n_atoms, bool)
+    layer_of = np.where(ok, near, -1)
+    layer_of[idx] = labels
+    return layers.model_copy(update={"layer_of": layer_of.tolist()})

@@ -27,6 +27,15 @@ GENESIS = "0" * 64
 UNRECORDED = {"status.json", "error.json", ".running"}
 
 
+class Rejection(BaseModel):
+    """A site the step rejected after its checks failed, and why."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    position: list[float] = Field(description="Å")
+    reason: str
+
+
 class LedgerRecord(BaseModel):
     """What the ledger keeps of one finished step."""
 
@@ -42,6 +51,8 @@ class LedgerRecord(BaseModel):
     scf_iterations: int | None = None
     findings: dict[str, int] = Field(default_factory=dict, description="count per severity")
     decision: Decision | None = None
+    remedies: list[str] = Field(default_factory=list, description="SCF retries made")
+    rejected: list[Rejection] = Field(default_factory=list, description="sites rejected")
     files: dict[str, str] = Field(description="step-relative path -> sha256")
     engine: str
     engine_version: str

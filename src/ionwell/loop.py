@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import contextlib
 import fcntl
-import json
 import logging
 import os
 import shutil
@@ -42,7 +41,14 @@ from ionwell.engines import get_engine
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.errors import IonwellError, LedgerError
 from ionwell.host import host_formula_units, load_host
-from ionwell.ledger import LedgerRecord, append_record, hash_step_files, read_ledger, sync_mirror
+from ionwell.ledger import (
+    LedgerRecord,
+    Rejection,
+    append_record,
+    hash_step_files,
+    read_ledger,
+    sync_mirror,
+)
 
 log = logging.getLogger(__name__)
 
@@ -211,10 +217,6 @@ def run_step(root: str | Path, step: int) -> StepStatus:
         return read_status(paths.step(step) / "status.json")
 
 
-def _guest_count(atoms: Atoms, n_host: int) -> int:
-    return len(atoms) - n_host
-
-
 def _stop_reason(campaign: Campaign, step: int, guests: int, units: float) -> str | None:
     stop = campaign.stop
     if stop.guests is not None and guests >= stop.guests:
@@ -223,6 +225,102 @@ def _stop_reason(campaign: Campaign, step: int, guests: int, units: float) -> st
         return f"target reached: x = {guests / units:.3f} guests per formula unit"
     if step >= stop.max_steps:
         return f"maximum steps reached ({stop.max_steps})"
+    return None
+
+
+class _Computed(BaseModel):
+    """One engine compute of a step, after any SCF remedies."""
+
+    model_config = {"arbitrary_types_allowed": True}
+
+    result: StepResult
+    potential: grid.Grid
+    remedies: list[str]
+
+
+def _scf_variants(campaign: Campaign) -> list[tuple[str, Campaign]]:
+    """The campaign's engine as configured, then each configured SCF remedy."""
+    eng = campaign.engine
+    rem = campaign.remedies
+    out = [("as configured", campaign)]
+    for name in rem.scf:
+        if name == "more_cycles":
+            upd = {"max_cycle": max(rem.more_cycles, eng.max_cycle)}
+            what = f"max_cycle {upd['max_cycle']}"
+        elif name == "level_shift":
+            upd = {"level_shift": rem.level_shift}
+            what = f"level shift {rem.level_shift} Ha"
+        else:
+            upd = {"smearing": rem.smearing}
+            what = f"smearing {rem.smearing} eV"
+        out.append((what, campaign.model_copy(update={"engine": eng.model_copy(update=upd)})))
+    return out
+
+
+def _compute(campaign: Campaign, atoms: Atoms, workdir: Path, ctx: ComputeContext) -> _Computed:
+    """Run the engine; when the SCF does not converge, retry with each configured remedy."""
+    tried: list[str] = []
+    for what, variant in _scf_variants(campaign):
+        engine = get_engine(variant)
+        if tried:
+            log.warning("step %04d: SCF not converged; retrying with %s", ctx.step, what)
+        engine.prepare(atoms, workdir, ctx)
+        if engine.argv(workdir, None) is not None:
+            raise IonwellError(f"step {ctx.step}: engine {engine.name} needs a launcher")
+        engine.run(workdir)
+        result, pot = engine.collect(workdir)
+        if tried:
+            tried.append(
+                f"SCF retry with {what}: {'converged' if result.scf_converged else 'not converged'}"
+            )
+        else:
+            tried.append("first try")
+        if result.scf_converged:
+            break
+    return _Computed(result=result, potential=pot, remedies=tried[1:])
+
+
+def _movable(campaign: Campaign, n_atoms: int, guest_idx: tuple[int, ...]) -> tuple[int, ...]:
+    if not campaign.relax.enabled:
+        return ()
+    if campaign.relax.move == "all":
+        return tuple(range(n_atoms))
+    return guest_idx
+
+
+def _findings(campaign: Campaign, step: int, relaxed: Atoms, n_host: int, host: Atoms, result):
+    ck = campaign.checks
+    return checks.step_findings(
+        step,
+        relaxed,
+        list(range(n_host, len(relaxed))),
+        list(range(n_host)),
+        scf_converged=result.scf_converged,
+        relax_converged=result.relax_converged,
+        min_distance=ck.min_distance,
+        envelope=ck.envelope if ck.envelope is not None else campaign.placement.within,
+        guest_alert=ck.guest_alert,
+        host_pieces=checks.host_fragments(host, list(range(n_host))) if ck.connectivity else None,
+        rim_distance=ck.rim_distance,
+        rim_alert=ck.rim_alert,
+    )
+
+
+def _alternative_input(
+    paths: CampaignPaths, step: int, campaign: Campaign, avoid: list[list[float]]
+) -> tuple[Atoms, placement.Site] | None:
+    """The previous step's structure with its next untried well instead of the chosen one."""
+    if step == 0:
+        return None
+    prev = read_ledger(paths.ledger)[step - 1]
+    if prev.decision is None or len(prev.decision.chosen) != 1:
+        return None
+    tried = [np.asarray(p) for p in avoid]
+    for site in prev.decision.candidates:
+        if all(np.linalg.norm(np.asarray(site.position) - t) > 1e-6 for t in tried):
+            base = read(paths.step(step - 1) / "relaxed.extxyz")
+            base.calc = None
+            return base + Atoms(campaign.guest.element, positions=[site.position]), site
     return None
 
 
@@ -235,59 +333,69 @@ def _compute_and_record(paths: CampaignPaths, step: int) -> LedgerRecord:
     sdir = paths.step(step)
     _clean_step_dir(sdir)
     atoms = step_input(paths, step)
-    _write_atoms(sdir / "input.extxyz", atoms)
-    guests = _guest_count(atoms, n_host)
+    guests = len(atoms) - n_host
     guest_idx = tuple(range(n_host, len(atoms)))
-
     charge = campaign.engine.charge + (guests if campaign.guest.charge_mode == "cation" else 0)
-    if not campaign.relax.enabled:
-        movable: tuple[int, ...] = ()
-    elif campaign.relax.move == "all":
-        movable = tuple(range(len(atoms)))
-    else:
-        movable = guest_idx
     previous = paths.step(step - 1) / "engine" if step > 0 else None
-    ctx = ComputeContext(step=step, charge=charge, movable=movable, previous=previous)
-
-    engine = get_engine(campaign)
+    ctx = ComputeContext(
+        step=step,
+        charge=charge,
+        movable=_movable(campaign, len(atoms), guest_idx),
+        previous=previous,
+    )
     workdir = sdir / "engine"
     workdir.mkdir(exist_ok=True)
-    log.info(
-        "step %04d: %d atoms, %d %s, charge %+d — computing with %s",
-        step, len(atoms), guests, campaign.guest.element, charge, engine.name,
-    )  # fmt: skip
-    engine.prepare(atoms, workdir, ctx)
-    if engine.argv(workdir, None) is not None:
-        raise IonwellError(f"step {step}: engine {engine.name} needs a launcher (not in v1)")
-    engine.run(workdir)
-    result, pot = engine.collect(workdir)
-    relaxed = result.atoms()
-    _write_step_result(sdir, result, pot, relaxed)
+    rejected: list[Rejection] = []
+    while True:
+        _write_atoms(sdir / "input.extxyz", atoms)
+        log.info(
+            "step %04d: %d atoms, %d %s, charge %+d — computing with %s",
+            step, len(atoms), guests, campaign.guest.element, charge, campaign.engine.kind,
+        )  # fmt: skip
+        done = _compute(campaign, atoms, workdir, ctx)
+        result, pot = done.result, done.potential
+        relaxed = result.atoms()
+        findings = _findings(campaign, step, relaxed, n_host, host, result)
+        errors = [f for f in findings if f.severity == "error"]
+        if not errors or not campaign.remedies.reject_site:
+            break
+        if len(rejected) >= campaign.remedies.max_rejects:
+            break
+        avoid = [list(atoms.positions[-1])] + [r.position for r in rejected]
+        alt = _alternative_input(paths, step, campaign, avoid)
+        if alt is None:
+            break
+        why = "; ".join(f.code for f in errors)
+        rejected.append(Rejection(position=list(map(float, atoms.positions[-1])), reason=why))
+        log.warning(
+            "step %04d: site (%.3f, %.3f, %.3f) rejected (%s); taking the next well",
+            step, *atoms.positions[-1], why,
+        )  # fmt: skip
+        atoms = alt[0]
 
-    findings = checks.step_findings(
-        step,
-        relaxed,
-        list(guest_idx),
-        list(range(n_host)),
-        scf_converged=result.scf_converged,
-        relax_converged=result.relax_converged,
-        envelope=campaign.placement.within,
-    )
+    _write_step_result(sdir, result, pot, relaxed)
     atomic_write_json(sdir / "checks.json", [f.model_dump(mode="json") for f in findings])
     for f in findings:
         (log.error if f.severity == "error" else log.warning)("step %04d: %s", step, f.message)
 
     units = host_formula_units(host, campaign.host.formula_unit)
-    errors = [f for f in findings if f.severity == "error"]
     decision = None
     if errors:
         reason = "stopped by check: " + "; ".join(f.message for f in errors)
     else:
         reason = _stop_reason(campaign, step, guests, units)
     if reason is None:
-        decision = _decide(campaign, pot, relaxed, n_host)
+        decision = _decide(campaign, pot, relaxed, n_host, step, sdir, charge)
         atomic_write_json(sdir / "decision.json", decision.model_dump(mode="json"))
-        if decision.chosen:
+        bound = campaign.stop.well_above
+        if not decision.chosen:
+            reason = decision.reason
+        elif bound is not None and decision.chosen[0].potential > bound:
+            reason = (
+                f"deepest admissible well at {decision.chosen[0].potential:.3f} V lies above "
+                f"the bound {bound:.3f} V"
+            )
+        else:
             nxt = relaxed.copy()
             for site in decision.chosen:
                 nxt += Atoms(campaign.guest.element, positions=[site.position])
@@ -297,8 +405,6 @@ def _compute_and_record(paths: CampaignPaths, step: int) -> LedgerRecord:
                 step, result.energy, campaign.guest.element, *decision.chosen[0].position,
                 decision.chosen[0].potential,
             )  # fmt: skip
-        else:
-            reason = decision.reason
     if reason is not None:
         atomic_write_json(sdir / "STOP", {"step": step, "reason": reason})
         log.info("step %04d: E = %.6f eV; campaign stops: %s", step, result.energy, reason)
@@ -317,6 +423,8 @@ def _compute_and_record(paths: CampaignPaths, step: int) -> LedgerRecord:
         scf_iterations=result.scf_iterations,
         findings=counts,
         decision=decision,
+        remedies=done.remedies,
+        rejected=rejected,
         files=hash_step_files(sdir),
         engine=result.code,
         engine_version=result.code_version,
@@ -342,17 +450,70 @@ def _write_step_result(sdir: Path, result: StepResult, pot: grid.Grid, relaxed: 
     _write_atoms(sdir / "relaxed.extxyz", relaxed)
 
 
-def _decide(campaign: Campaign, pot: grid.Grid, atoms: Atoms, n_host: int) -> placement.Decision:
-    pc = campaign.placement
-    oriented = grid.orient(pot, atoms, pc.sign)
-    return placement.place(
-        oriented,
+def _screening_energies(
+    campaign: Campaign, relaxed: Atoms, sdir: Path, step: int, charge: int
+) -> placement.EnergyFunction:
+    """``energy_of`` for the ``screened`` rule: a single point per candidate site (eV).
+
+    Each candidate is computed in ``engine/screen-NN`` with the screening engine (default: the
+    campaign's own), without relaxation, warm-started from this step's own density.
+    """
+    screen = campaign.placement.screen
+    engine_cfg = screen.engine if screen.engine is not None else campaign.engine
+    variant = campaign.model_copy(
+        update={"engine": engine_cfg, "relax": campaign.relax.model_copy(update={"enabled": False})}
+    )
+    trial_charge = charge + (1 if campaign.guest.charge_mode == "cation" else 0)
+
+    def energy_of(sites: list[placement.Site]) -> list[float | None]:
+        out: list[float | None] = []
+        for i, site in enumerate(sites):
+            trial = relaxed.copy()
+            trial.calc = None
+            trial += Atoms(campaign.guest.element, positions=[site.position])
+            wd = sdir / "engine" / f"screen-{i:02d}"
+            wd.mkdir(parents=True, exist_ok=True)
+            ctx = ComputeContext(step=step, charge=trial_charge, previous=sdir / "engine")
+            try:
+                done = _compute(variant, trial, wd, ctx)
+            except IonwellError as err:
+                log.warning("step %04d: screening candidate %d failed: %s", step, i, err)
+                out.append(None)
+                continue
+            ok = done.result.scf_converged
+            out.append(done.result.energy if ok else None)
+            log.info(
+                "step %04d: screening candidate %d at (%.3f, %.3f, %.3f): %s",
+                step, i, *site.position,
+                f"E = {done.result.energy:.6f} eV" if ok else "SCF not converged",
+            )  # fmt: skip
+        return out
+
+    return energy_of
+
+
+def _decide(
+    campaign: Campaign,
+    pot: grid.Grid,
+    atoms: Atoms,
+    n_host: int,
+    step: int,
+    sdir: Path,
+    charge: int,
+) -> placement.Decision:
+    """The placement decision of a step (the same call replay makes)."""
+    energy_of = None
+    if campaign.placement.rule == "screened":
+        energy_of = _screening_energies(campaign, atoms, sdir, step, charge)
+    return placement.decide(
+        pot,
         atoms,
         campaign.guest.element,
-        exclusion=pc.exclusion or None,
-        within=pc.within,
+        campaign.placement,
+        step=step,
+        seed=campaign.seed,
         envelope_indices=list(range(n_host)),
-        candidates=pc.candidates,
+        energy_of=energy_of,
     )
 
 
@@ -404,10 +565,6 @@ def load_step_result(paths: CampaignPaths, step: int) -> StepResult:
     return StepResult.model_validate_json((paths.step(step) / "result.json").read_text())
 
 
-def guest_positions(atoms: Atoms, n_host: int) -> np.ndarray:
-    return atoms.positions[n_host:]
-
-
 def describe_error(paths: CampaignPaths) -> StepError | None:
     """The failure of the newest unfinished step, if its last attempt failed."""
     records = read_ledger(paths.ledger)
@@ -419,7 +576,3 @@ def describe_error(paths: CampaignPaths) -> StepError | None:
         except ValueError:
             return StepError(step=nxt, message=f.read_text()[:500], time="")
     return None
-
-
-def load_json(path: Path) -> object:
-    return json.loads(path.read_text())
