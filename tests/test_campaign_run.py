@@ -30,17 +30,17 @@ TINY = {
     "name": "tiny",
     "seed": 3,
     "host": {"builder": {"kind": "flake", "layers": 1, "shells": 1}},
-    "guest": {"element": "Li", "charge_mode": "neutral"},
+    "guest": {"element": "Li", "charge_mode": "cation"},
     "engine": {
         "kind": "pyscf",
         "xc": "lda,vwn",
         "basis": "sto-3g",
         "conv_tol": 1e-7,
-        "threads": 1,
+        "grid_level": 1,
         "potential_grid": {"spacing": 0.4, "margin": 3.0},
     },
     "placement": {"within": 3.0},
-    "relax": {"enabled": True, "fmax": 0.2, "steps": 4},
+    "relax": {"enabled": True, "fmax": 0.2, "steps": 2},
     "stop": {"guests": 3, "max_steps": 10},
 }
 
@@ -127,7 +127,7 @@ def test_rerun_of_finished_campaign_recomputes_nothing(reference):
 def test_changed_config_is_refused_with_a_diff(reference):
     root, _, _, _ = reference
     changed = dict(TINY)
-    changed["relax"] = {"enabled": True, "fmax": 0.1, "steps": 4}
+    changed["relax"] = {"enabled": True, "fmax": 0.1, "steps": 2}
     cfg = root / "changed.yaml"
     cfg.write_text(yaml.safe_dump(changed))
     proc = _run(cfg, root)
@@ -198,3 +198,37 @@ def test_sigkill_at_random_moments_then_resume_matches(reference, tmp_path):
     assert sorted(recorded_at) == [0, 1, 2, 3]
     v = subprocess.run([*IONWELL, "verify", str(paths.root)], capture_output=True, text=True)
     assert v.returncode == 0, v.stderr
+
+
+def test_replay_rederives_every_decision_and_names_an_edited_map(reference, tmp_path):
+    import shutil
+
+    from ionwell import grid
+    from ionwell.replay import replay
+
+    root, _, _, _ = reference
+    src = root / "campaigns" / "tiny"
+    rep = subprocess.run([*IONWELL, "replay", str(src)], capture_output=True, text=True)
+    assert rep.returncode == 0, rep.stdout + rep.stderr
+    assert all(s.status in ("same", "no decision") for s in replay(src))
+
+    copy = tmp_path / "tiny"
+    shutil.copytree(src, copy)
+    # dig a deep, narrow well into step 1's stored map at an admissible point far from the
+    # recorded choice: the re-derived decision must move there, and replay must say so
+    paths = CampaignPaths(copy)
+    rec = read_ledger(paths.ledger)[1]
+    pot = grid.load_npz(paths.step(1) / "potential.npz")
+    chosen = np.array(rec.decision.chosen[0].position)
+    other = max(
+        rec.decision.candidates[1:], key=lambda s: np.linalg.norm(np.array(s.position) - chosen)
+    )
+    pts = pot.points().reshape(*pot.shape, 3)
+    r2 = ((pts - np.array(other.position)) ** 2).sum(axis=-1)
+    values = pot.values - 5.0 * np.exp(-r2 / (2 * 0.3**2))
+    grid.save_npz(paths.step(1) / "potential.npz", grid.Grid(pot.origin, pot.axes, values, pot.pbc))
+    result = {s.step: s for s in replay(copy)}
+    assert result[1].status == "differs"
+    assert result[0].status == "same" and result[2].status == "same"
+    rep = subprocess.run([*IONWELL, "replay", str(copy)], capture_output=True, text=True)
+    assert rep.returncode == 1 and "replay: step 1 differs" in rep.stderr

@@ -294,6 +294,13 @@ class ControllerLock:
             while time.monotonic() < deadline and _group_alive(pgid):
                 time.sleep(0.1)
 
+    def record_jobs_group(self, pgid: int) -> None:
+        """Note the process group of the jobs this controller started (ended if it dies)."""
+        info = self.read()
+        if info and info.get("pid") == os.getpid():
+            info["pgid"] = pgid
+            atomic_write_text(self.path, json.dumps(info))
+
     def release(self) -> None:
         info = self.read()
         if info and info.get("pid") == os.getpid():

@@ -69,6 +69,36 @@ def snakemake_argv(config: Path, root: Path, args: argparse.Namespace) -> list[s
     return argv
 
 
+def _run_snakemake(argv: list[str], lock) -> int:
+    """Run Snakemake in a process group of its own, recorded in the controller lock.
+
+    On SIGINT/SIGTERM the whole group (Snakemake and the step jobs it spawned) is ended at once;
+    after a SIGKILL of the controller, the next controller ends what is left of the group.
+    """
+    child = subprocess.Popen(argv, start_new_session=True, preexec_fn=_die_with_parent)
+    lock.record_jobs_group(child.pid)
+
+    def _stop(signum, _frame):
+        for sig, grace in ((signal.SIGTERM, 10.0), (signal.SIGKILL, 5.0)):
+            try:
+                os.killpg(child.pid, sig)
+            except ProcessLookupError:
+                break
+            try:
+                child.wait(timeout=grace)
+                break
+            except subprocess.TimeoutExpired:
+                continue
+        raise KeyboardInterrupt
+
+    old = {s: signal.signal(s, _stop) for s in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        return child.wait()
+    finally:
+        for s, h in old.items():
+            signal.signal(s, h)
+
+
 def cmd_run(args: argparse.Namespace) -> int:
     from ionwell.campaign import ControllerLock
     from ionwell.config import load_campaign
@@ -89,13 +119,13 @@ def cmd_run(args: argparse.Namespace) -> int:
                 [*argv, "--unlock"], check=False, capture_output=True, preexec_fn=_die_with_parent
             )
         print(f"ionwell: running campaign '{campaign.name}' in {paths.root}", flush=True)
-        proc = subprocess.run(argv, check=False, preexec_fn=_die_with_parent)
+        returncode = _run_snakemake(argv, lock)
     finally:
         lock.release()
     st = campaign_status(paths.root)
     print()
     print(format_status(st))
-    if proc.returncode != 0:
+    if returncode != 0:
         err = describe_error(paths)
         why = err.message if err else "Snakemake failed; see the messages above"
         print(f"ionwell: error: campaign '{campaign.name}' did not finish: {why}", file=sys.stderr)

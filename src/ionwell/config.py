@@ -122,6 +122,10 @@ class PyscfEngineConfig(_Model):
     level_shift: float = Field(0.0, ge=0.0, description="SCF level shift, hartree")
     smearing: float = Field(0.0, ge=0.0, description="Fermi smearing width, eV (0: none)")
     warm_start: bool = Field(True, description="start the SCF from the previous step's density")
+    density_fit: bool = Field(True, description="density-fit the Coulomb term (faster gradients)")
+    grid_level: int | None = Field(
+        None, ge=0, le=9, description="PySCF integration grid level, 0-9 (default: PySCF's, 3)"
+    )
     threads: int | None = Field(None, ge=1, description="OpenMP threads (default: all)")
     potential_grid: PotentialGridConfig = PotentialGridConfig()
     potential_method: Literal["exact", "fitted"] = Field(
@@ -262,7 +266,7 @@ class ChecksConfig(_Model):
 
     min_distance: float = Field(0.7, gt=0.0, description="error when two atoms are closer")
     envelope: float | None = Field(
-        None, gt=0.0, description="warn when a guest is farther from the host (default: within)"
+        None, gt=0.0, description="warn when a guest is farther from the host (default: within + 1)"
     )
     guest_alert: float | None = Field(1.8, gt=0.0, description="warn when two guests are closer")
     connectivity: bool = Field(True, description="error when the host falls into more pieces")

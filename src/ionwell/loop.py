@@ -298,7 +298,7 @@ def _findings(campaign: Campaign, step: int, relaxed: Atoms, n_host: int, host: 
         scf_converged=result.scf_converged,
         relax_converged=result.relax_converged,
         min_distance=ck.min_distance,
-        envelope=ck.envelope if ck.envelope is not None else campaign.placement.within,
+        envelope=ck.envelope if ck.envelope is not None else campaign.placement.within + 1.0,
         guest_alert=ck.guest_alert,
         host_pieces=checks.host_fragments(host, list(range(n_host))) if ck.connectivity else None,
         rim_distance=ck.rim_distance,
