@@ -133,7 +133,8 @@ class PyscfEngineConfig(_Model):
     )
 
 
-EngineConfig = Annotated[PyscfEngineConfig, Field(discriminator="kind")]
+# one engine kind so far; a discriminated union (default kind: pyscf) once there are more
+EngineConfig = PyscfEngineConfig
 
 
 class BoxRegion(_Model):
