@@ -100,3 +100,19 @@ def test_malformed_ledger_line_named(campaign):
         fh.write("{not json\n")
     with pytest.raises(LedgerError, match="line 4"):
         read_ledger(campaign.ledger)
+
+
+def test_mirror_accepts_a_hash_that_looks_like_a_number(campaign):
+    """ASE's database refuses strings that parse as floats (e.g. '9512072780438e71'); such
+    record hashes occur by chance and must not break the mirror (seen in a demo run)."""
+    from ase import Atoms
+    from ase.db import connect
+    from ase.io import write
+
+    from ionwell.ledger import sync_mirror
+
+    rec = read_ledger(campaign.ledger)[0].model_copy(update={"hash": "9512072780438e71" + "0" * 48})
+    write(campaign.step(0) / "relaxed.extxyz", Atoms("Li", positions=[[0, 0, 0]]))
+    assert sync_mirror(campaign, [rec]) == 1
+    (row,) = connect(campaign.database).select()
+    assert row.record == "sha256:9512072780438e71"

@@ -189,7 +189,7 @@ def sync_mirror(paths: CampaignPaths, records: list[LedgerRecord] | None = None)
             "step": rec.step,
             "guests": rec.guests,
             "outcome": rec.outcome,
-            "record": rec.hash[:16],
+            "record": f"sha256:{rec.hash[:16]}",  # prefixed: ase.db reads bare hex like 12e34 as a float
         }
         if rec.energy is not None:
             kv["total_energy"] = rec.energy
