@@ -79,21 +79,10 @@ class CampaignPaths:
     def step(self, n: int) -> Path:
         return self.steps / step_label(n)
 
-    def existing_steps(self) -> list[int]:
-        """Step numbers that have a folder, ascending."""
-        if not self.steps.is_dir():
-            return []
-        return sorted(int(p.name) for p in self.steps.iterdir() if p.is_dir() and p.name.isdigit())
-
 
 def step_label(n: int) -> str:
     """Folder name of step ``n`` (zero-padded)."""
     return f"{n:0{STEP_DIGITS}d}"
-
-
-def campaign_dir(root: str | Path, name: str) -> Path:
-    """``<root>/campaigns/<name>``."""
-    return Path(root) / "campaigns" / name
 
 
 # ---------------------------------------------------------------------------------------------

@@ -115,10 +115,6 @@ def append_record(path: Path, record: LedgerRecord) -> LedgerRecord:
     return rec
 
 
-def find_record(records: list[LedgerRecord], step: int) -> LedgerRecord | None:
-    return records[step] if 0 <= step < len(records) and records[step].step == step else None
-
-
 class VerifyProblem(BaseModel):
     """One disagreement between the ledger and the files on disk."""
 

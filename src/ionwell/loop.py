@@ -89,9 +89,7 @@ def prepare_campaign(campaign: Campaign, root: Path, base_dir: Path) -> Campaign
     atoms = None if paths.host.exists() else load_host(campaign.host, base_dir)
     freeze_or_check(paths, campaign)
     if atoms is not None:
-        tmp = paths.host.with_name(".host.extxyz.tmp")
-        write(tmp, atoms, format="extxyz")
-        atomic_publish(tmp, paths.host)
+        _write_atoms(paths.host, atoms)
     return paths
 
 
@@ -160,7 +158,8 @@ def _clean_step_dir(sdir: Path) -> None:
             p.unlink()
 
 
-def _write_atoms(path: Path, atoms: Atoms) -> None:
+def _write_atoms(path: Path, atoms: Atoms | list[Atoms]) -> None:
+    """Write one structure or several frames as extended XYZ, published atomically."""
     tmp = path.with_name(f".{path.name}.tmp")
     write(tmp, atoms, format="extxyz")
     atomic_publish(tmp, path)
@@ -545,9 +544,7 @@ def summarize(root: str | Path) -> CampaignSummary:
         a.calc = None
         a.info = {"step": rec.step, "guests": rec.guests, "energy": rec.energy}
         frames.append(a)
-    tmp = paths.trajectory.with_name(".trajectory.extxyz.tmp")
-    write(tmp, frames, format="extxyz")
-    atomic_publish(tmp, paths.trajectory)
+    _write_atoms(paths.trajectory, frames)
     sync_mirror(paths, records)
     summary = CampaignSummary(
         name=campaign.name,
@@ -559,10 +556,6 @@ def summarize(root: str | Path) -> CampaignSummary:
     )
     atomic_write_text(paths.summary, summary.model_dump_json(indent=2))
     return summary
-
-
-def load_step_result(paths: CampaignPaths, step: int) -> StepResult:
-    return StepResult.model_validate_json((paths.step(step) / "result.json").read_text())
 
 
 def describe_error(paths: CampaignPaths) -> StepError | None:
