@@ -113,6 +113,22 @@ def test_uninterrupted_campaign_reaches_its_stop_rule(reference):
     assert d.min() > 1.5
 
 
+def test_checks_stay_quiet_on_the_relaxed_steps(reference):
+    """Every check runs on each relaxed step; none fires except the relaxation cap that this
+    config sets on purpose (2 optimizer steps)."""
+    root, _, _, _ = reference
+    paths = CampaignPaths(root / "campaigns" / "tiny")
+    recs = read_ledger(paths.ledger)
+    for rec in recs:
+        found = json.loads((paths.step(rec.step) / "checks.json").read_text())
+        codes = {f["code"] for f in found}
+        assert codes <= {"relax-not-converged"}, (rec.step, found)
+        out = json.loads((paths.step(rec.step) / "result.json").read_text())
+        assert ("relax-not-converged" in codes) == (out["relax_converged"] is False)
+    # the host alone and the first guest (cation over the ring face) relax within the cap
+    assert recs[0].findings == {} and recs[1].findings == {}
+
+
 def test_rerun_of_finished_campaign_recomputes_nothing(reference):
     root, cfg, _, _ = reference
     paths = CampaignPaths(root / "campaigns" / "tiny")

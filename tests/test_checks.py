@@ -210,3 +210,23 @@ def test_edge_crowding_fires_for_rim_guests_only_on_a_particle():
         relax_converged=None,
         rim_alert=0.0,
     )
+
+
+def test_guest_on_host_atom() -> None:
+    # a Li 1.0 Å above a carbon of the top sheet (sheet at z = +1.675 Å): far closer than any
+    # Li–C contact (about 2.2–2.3 Å, common practice), but not closer than the 0.7 Å pair bound
+    host = build_flake(FlakeBuilder(shells=2, layers=2))
+    c = next(i for i, a in enumerate(host) if a.symbol == "C" and a.position[2] > 1.0)
+    spot = tuple(host.positions[c] + [0.0, 0.0, 1.0])
+    atoms, guests, hosts = _host_with_guests((-2.15, 0.0, 0.0), spot)
+    findings = _run(atoms, guests, hosts, guest_host_min=1.5)
+    assert _codes(findings) == ["guest-on-host-atom"]
+    assert findings[0].severity == "error"
+    assert (
+        f"guest {guests[1]} (Li)" in findings[0].message
+        and f"host atom {c} (C)" in findings[0].message
+    )
+    assert "1.000 Å" in findings[0].message
+    # off by default, and quiet on the clean structure
+    assert _run(atoms, guests, hosts) == []
+    assert _run(*_clean(), guest_host_min=1.5) == []

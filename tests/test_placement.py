@@ -37,6 +37,7 @@ from ionwell.placement import (
     decide,
     default_exclusion,
     find_wells,
+    next_untried,
     place,
     region_mask,
 )
@@ -770,3 +771,15 @@ def test_refined_wells_never_leave_the_admissible_region():
         p = np.array(s.position)
         assert np.all(np.linalg.norm(atoms.positions - p, axis=1) >= limits - 1e-9)
         assert g.region.galleries.contains(p[None, :])[0]
+
+
+def test_next_untried_skips_tried_sites_and_keeps_the_separation():
+    wells = _sites([-3.0, -2.0, -1.0, -0.5], spacing=2.0)  # at x = 0, 2, 4, 6 Å
+    assert next_untried(wells, [], count=1) == [0]
+    assert next_untried(wells, [wells[0].position], count=1) == [1]
+    # two at a time, 3 Å apart at least: after the first pair (0, 2) is tried, wells 1 and 3
+    assert next_untried(wells, [], count=2, separation=3.0) == [0, 2]
+    tried = [wells[0].position, wells[2].position]
+    assert next_untried(wells, tried, count=2, separation=3.0) == [1, 3]
+    # everything tried: nothing left
+    assert next_untried(wells, [w.position for w in wells]) == []

@@ -11,6 +11,7 @@ code                       severity  meaning
 ``relax-not-converged``    warning   the relaxation stopped at its step cap above ``fmax``
 ``non-finite-positions``   error     a position is NaN or infinite
 ``atoms-too-close``        error     two atoms closer than ``min_distance`` (Å)
+``guest-on-host-atom``     error     a guest closer than ``guest_host_min`` (Å) to a host atom
 ``guest-outside-envelope`` warning   a guest farther than ``envelope`` (Å) from every host atom
 ``guests-too-close``       warning   two guests closer than ``guest_alert`` (Å)
 ``host-fragmented``        error     the host falls into more bonded pieces than it started with
@@ -38,6 +39,7 @@ from pydantic import BaseModel, ConfigDict, Field
 __all__ = [
     "MAX_PAIRS",
     "Finding",
+    "guest_host_findings",
     "BOND_SCALE",
     "close_pair_findings",
     "edge_atoms",
@@ -195,6 +197,37 @@ def envelope_findings(
     return out
 
 
+def guest_host_findings(
+    step: int,
+    atoms: Atoms,
+    guest_indices: Sequence[int],
+    host_indices: Sequence[int],
+    guest_host_min: float,
+) -> list[Finding]:
+    """One ``guest-on-host-atom`` error per guest nearer than ``guest_host_min`` Å to the host.
+
+    Catches a guest driven into a host bond or onto a host atom, far closer than any bonded
+    guest–host contact (for Li on carbon, Li–C contacts are about 2.2–2.3 Å; common practice).
+    """
+    if not len(guest_indices) or not len(host_indices):
+        return []
+    dist = _distances(atoms, guest_indices, host_indices)
+    out = []
+    for g, row in zip(guest_indices, dist, strict=True):
+        k = int(np.argmin(row))
+        if row[k] < guest_host_min:
+            out.append(
+                Finding(
+                    severity="error",
+                    code="guest-on-host-atom",
+                    message=f"guest {_label(atoms, int(g))} is {row[k]:.3f} Å from host atom "
+                    f"{_label(atoms, int(host_indices[k]))} (bound {guest_host_min:g} Å)",
+                    step=step,
+                )
+            )
+    return out
+
+
 def guest_pair_findings(
     step: int, atoms: Atoms, guest_indices: Sequence[int], guest_alert: float
 ) -> list[Finding]:
@@ -301,6 +334,7 @@ def step_findings(
     scf_converged: bool,
     relax_converged: bool | None,
     min_distance: float = 0.7,
+    guest_host_min: float | None = None,
     envelope: float | None = None,
     guest_alert: float | None = None,
     host_pieces: int | None = None,
@@ -309,7 +343,7 @@ def step_findings(
 ) -> list[Finding]:
     """All findings for one step's (relaxed) structure, errors first.
 
-    ``envelope`` and ``guest_alert`` (Å) switch their checks off when None. Distance checks are
+    ``guest_host_min``, ``envelope`` and ``guest_alert`` (Å) switch their checks off when None. Distance checks are
     skipped when positions are not finite (that itself is an error finding). ``host_pieces`` is
     the fragment count of the pristine host (None: not checked); ``rim_alert`` the fraction of
     guests at the rim above which a warning is given (None: not checked).
@@ -333,6 +367,8 @@ def step_findings(
         )
     else:
         out += close_pair_findings(step, atoms, min_distance)
+        if guest_host_min is not None:
+            out += guest_host_findings(step, atoms, guests, hosts, guest_host_min)
         if envelope is not None:
             out += envelope_findings(step, atoms, guests, hosts, envelope)
         if guest_alert is not None:

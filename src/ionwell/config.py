@@ -266,6 +266,9 @@ class ChecksConfig(_Model):
     """Per-step checks and their bounds (Å unless stated)."""
 
     min_distance: float = Field(0.7, gt=0.0, description="error when two atoms are closer")
+    guest_host_min: float | None = Field(
+        None, gt=0.0, description="error when a guest is closer to a host atom (None: off)"
+    )
     envelope: float | None = Field(
         None, gt=0.0, description="warn when a guest is farther from the host (default: within + 1)"
     )
@@ -288,9 +291,10 @@ class RemedyConfig(_Model):
     level_shift: float = Field(0.3, gt=0.0, description="level shift of that retry, hartree")
     smearing: float = Field(0.1, gt=0.0, description="Fermi smearing of that retry, eV")
     reject_site: bool = Field(
-        True, description="on an error finding, reject the newest guest's site, take the next well"
+        True,
+        description="on an error finding, reject the step's new site(s) and take the next well(s)",
     )
-    max_rejects: int = Field(3, ge=0, description="sites rejected at most per step")
+    max_rejects: int = Field(3, ge=0, description="times a step's new sites are rejected at most")
 
 
 class StopConfig(_Model):

@@ -20,7 +20,6 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Literal
 
-import numpy as np
 from ase import Atoms
 from ase.io import read, write
 from pydantic import BaseModel
@@ -297,6 +296,7 @@ def _findings(campaign: Campaign, step: int, relaxed: Atoms, n_host: int, host: 
         scf_converged=result.scf_converged,
         relax_converged=result.relax_converged,
         min_distance=ck.min_distance,
+        guest_host_min=ck.guest_host_min,
         envelope=ck.envelope if ck.envelope is not None else campaign.placement.within + 1.0,
         guest_alert=ck.guest_alert,
         host_pieces=checks.host_fragments(host, list(range(n_host))) if ck.connectivity else None,
@@ -306,21 +306,34 @@ def _findings(campaign: Campaign, step: int, relaxed: Atoms, n_host: int, host: 
 
 
 def _alternative_input(
-    paths: CampaignPaths, step: int, campaign: Campaign, avoid: list[list[float]]
-) -> tuple[Atoms, placement.Site] | None:
-    """The previous step's structure with its next untried well instead of the chosen one."""
+    paths: CampaignPaths, step: int, campaign: Campaign, tried: list[list[float]]
+) -> Atoms | None:
+    """The previous step's structure with its next untried wells instead of the chosen ones.
+
+    As many guests as the previous decision placed, at the next wells of that decision in depth
+    order that keep the separation (:func:`placement.next_untried`); None when none is left.
+    """
     if step == 0:
         return None
     prev = read_ledger(paths.ledger)[step - 1]
-    if prev.decision is None or len(prev.decision.chosen) != 1:
+    if prev.decision is None or not prev.decision.chosen:
         return None
-    tried = [np.asarray(p) for p in avoid]
-    for site in prev.decision.candidates:
-        if all(np.linalg.norm(np.asarray(site.position) - t) > 1e-6 for t in tried):
-            base = read(paths.step(step - 1) / "relaxed.extxyz")
-            base.calc = None
-            return base + Atoms(campaign.guest.element, positions=[site.position]), site
-    return None
+    base = read(paths.step(step - 1) / "relaxed.extxyz")
+    base.calc = None
+    periodic = None
+    if base.pbc.any():  # the separation needs the map's periodicity
+        periodic = grid.load_npz(paths.step(step - 1) / "potential.npz")
+    pick = placement.next_untried(
+        prev.decision.candidates,
+        tried,
+        count=len(prev.decision.chosen),
+        separation=campaign.placement.separation,
+        grid=periodic,
+    )
+    if not pick:
+        return None
+    sites = [prev.decision.candidates[i].position for i in pick]
+    return base + Atoms(campaign.guest.element * len(sites), positions=sites)
 
 
 def _compute_and_record(paths: CampaignPaths, step: int) -> LedgerRecord:
@@ -345,6 +358,8 @@ def _compute_and_record(paths: CampaignPaths, step: int) -> LedgerRecord:
     workdir = sdir / "engine"
     workdir.mkdir(exist_ok=True)
     rejected: list[Rejection] = []
+    rounds = 0  # times this step's new sites were rejected
+    n_before = n_host + (read_ledger(paths.ledger)[step - 1].guests if step > 0 else 0)
     while True:
         _write_atoms(sdir / "input.extxyz", atoms)
         log.info(
@@ -358,19 +373,20 @@ def _compute_and_record(paths: CampaignPaths, step: int) -> LedgerRecord:
         errors = [f for f in findings if f.severity == "error"]
         if not errors or not campaign.remedies.reject_site:
             break
-        if len(rejected) >= campaign.remedies.max_rejects:
+        if rounds >= campaign.remedies.max_rejects or len(atoms) == n_before:
             break
-        avoid = [list(atoms.positions[-1])] + [r.position for r in rejected]
-        alt = _alternative_input(paths, step, campaign, avoid)
+        rounds += 1
+        placed = [list(map(float, p)) for p in atoms.positions[n_before:]]
+        alt = _alternative_input(paths, step, campaign, [r.position for r in rejected] + placed)
         if alt is None:
             break
-        why = "; ".join(f.code for f in errors)
-        rejected.append(Rejection(position=list(map(float, atoms.positions[-1])), reason=why))
+        why = "; ".join(sorted({f.code for f in errors}))
+        rejected += [Rejection(position=p, reason=why) for p in placed]
+        where = ", ".join(f"({p[0]:.3f}, {p[1]:.3f}, {p[2]:.3f})" for p in placed)
         log.warning(
-            "step %04d: site (%.3f, %.3f, %.3f) rejected (%s); taking the next well",
-            step, *atoms.positions[-1], why,
-        )  # fmt: skip
-        atoms = alt[0]
+            "step %04d: site(s) %s rejected (%s); taking the next well(s)", step, where, why
+        )
+        atoms = alt
 
     _write_step_result(sdir, result, pot, relaxed)
     atomic_write_json(sdir / "checks.json", [f.model_dump(mode="json") for f in findings])

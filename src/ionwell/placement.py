@@ -46,6 +46,11 @@ Placement rules:
   well at a time without replacement among the wells that keep the separation, the weights
   renormalised over them. Fewer guests than asked are placed when the wells run out, and the
   reason says so.
+
+Rejected sites (the loop's ``reject_site`` remedy): when a step computed with the chosen sites
+fails a check, :func:`next_untried` strikes out every site tried so far and takes the next wells
+of the same decision in depth order, greedily keeping the separation — whatever the rule, so the
+fallback never draws new random numbers and replays exactly.
 """
 
 from __future__ import annotations
@@ -81,6 +86,7 @@ __all__ = [
     "decide",
     "default_exclusion",
     "find_wells",
+    "next_untried",
     "place",
     "region_mask",
 ]
@@ -626,6 +632,27 @@ def _greedy(
                 continue
         taken.append(i)
     return taken
+
+
+def next_untried(
+    wells: Sequence[Site],
+    tried: Sequence[Sequence[float]],
+    count: int = 1,
+    separation: float = 2.5,
+    grid: Grid | None = None,
+    tolerance: float = 1e-3,
+) -> list[int]:
+    """Indices of up to ``count`` wells in depth order, none within ``tolerance`` Å of a tried
+    position, each at least ``separation`` Å (minimum image on ``grid``'s periodic axes) from
+    the others taken. Empty when every well has been tried."""
+    tried_pos = np.asarray(tried, dtype=float).reshape(-1, 3)
+    order = [
+        i
+        for i, w in enumerate(wells)
+        if not len(tried_pos)
+        or _distances(grid, np.asarray(w.position), tried_pos).min() > tolerance
+    ]
+    return _greedy(order, wells, count, separation, grid)
 
 
 def _thermal_weights(wells: Sequence[Site], temperature: float, ion_charge: float) -> np.ndarray:

@@ -47,14 +47,69 @@ def _recorded_energies(decision: placement.Decision) -> placement.EnergyFunction
     return energy_of
 
 
+def _fallback_message(
+    paths: CampaignPaths, campaign, prev, rec, n_host: int, periodic: grid.Grid | None
+) -> str | None:
+    """Why the step's input does not follow its previous decision (None: it does).
+
+    Without rejections the new guests are the previous decision's chosen sites; with them, the
+    rejected sites are the chosen set and then each fallback set of
+    :func:`placement.next_untried`, and the guests computed are the set after the last one.
+    """
+    if prev.decision is None or not prev.decision.chosen:
+        return None
+    count = len(prev.decision.chosen)
+    sets = [np.array([s.position for s in prev.decision.chosen])]
+    tried: list[list[float]] = []
+    rejected = np.array([r.position for r in rec.rejected]).reshape(-1, 3)
+    used = 0
+    while used < len(rejected):
+        current = sets[-1]
+        if len(current) == 0:
+            return "more sites were rejected than the previous decision had wells"
+        part = rejected[used : used + len(current)]
+        if part.shape != current.shape or np.abs(part - current).max() > SITE_TOLERANCE:
+            return (
+                f"rejected sites {np.round(part, 4).tolist()} Å are not the fallback order's "
+                f"{np.round(current, 4).tolist()} Å"
+            )
+        used += len(current)
+        tried += current.tolist()
+        pick = placement.next_untried(
+            prev.decision.candidates, tried, count, campaign.placement.separation, periodic
+        )
+        sets.append(np.array([prev.decision.candidates[i].position for i in pick]).reshape(-1, 3))
+    try:
+        new = read(paths.step(rec.step) / "input.extxyz").positions[n_host + prev.guests :]
+    except (OSError, ValueError) as err:
+        return f"cannot read the step's input structure: {err}"
+    want = sets[-1]
+    if new.shape != want.shape or (new.size and np.abs(new - want).max() > 1e-5):
+        return (
+            f"the guests computed, {np.round(new, 4).tolist()} Å, are not the sites the previous "
+            f"decision gives, {np.round(want, 4).tolist()} Å"
+        )
+    return None
+
+
 def replay(root: str | Path) -> list[ReplayStep]:
     """Replay every recorded step of the campaign in ``root``."""
     paths = CampaignPaths(Path(root))
     campaign = load_frozen(paths)
     records = read_ledger(paths.ledger)
-    n_host = len(read(paths.host))
+    host = read(paths.host)
+    n_host, periodic_host = len(host), bool(host.pbc.any())
     out: list[ReplayStep] = []
     for rec in records:
+        if rec.step > 0:
+            prev = records[rec.step - 1]
+            periodic = None
+            if periodic_host:
+                periodic = grid.load_npz(paths.step(prev.step) / "potential.npz")
+            why = _fallback_message(paths, campaign, prev, rec, n_host, periodic)
+            if why is not None:
+                out.append(ReplayStep(step=rec.step, status="differs", message=why))
+                continue
         if rec.decision is None:
             out.append(
                 ReplayStep(step=rec.step, status="no decision", message=rec.stop_reason or "")
