@@ -64,6 +64,8 @@ def snakemake_argv(config: Path, root: Path, args: argparse.Namespace) -> list[s
         argv += ["--profile", str(_profile_dir(args.profile))]
     if args.cores or not args.profile:
         argv += ["--cores", str(args.cores or 1)]
+    if args.retries is not None or not args.profile:
+        argv += ["--retries", str(2 if args.retries is None else args.retries)]
     if not args.verbose:
         argv += ["--quiet", "rules", "host", "reason", "progress"]
     return argv
@@ -203,6 +205,13 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--root", default=".", help="folder holding campaigns/ (default: .)")
     r.add_argument("--cores", type=int, default=None, help="cores for Snakemake (default 1)")
     r.add_argument("--profile", default=None, help="Snakemake profile: local, or a folder")
+    r.add_argument(
+        "--retries",
+        type=int,
+        default=None,
+        help="attempts after a failed step job, continuing from its restart files (default 2, "
+        "or the profile's)",
+    )
     r.add_argument("-v", "--verbose", action="store_true", help="show Snakemake's own output")
     r.set_defaults(func=cmd_run)
 

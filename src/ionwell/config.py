@@ -17,10 +17,25 @@ import yaml
 from ase.data import atomic_numbers
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from ionwell.engine_config import (
+    AseEngineConfig,
+    CommandEngineConfig,
+    EngineConfig,
+    LauncherConfig,
+    PotentialGridConfig,
+    PyscfEngineConfig,
+    TbliteEngineConfig,
+    default_engine_kind,
+)
 from ionwell.errors import ConfigError
 
 __all__ = [
+    "AseEngineConfig",
     "Campaign",
+    "CommandEngineConfig",
+    "EngineConfig",
+    "LauncherConfig",
+    "TbliteEngineConfig",
     "ChecksConfig",
     "FlakeBuilder",
     "GuestConfig",
@@ -103,40 +118,6 @@ class GuestConfig(_Model):
     _el = field_validator("element")(classmethod(lambda cls, v: _check_element(v)))
 
 
-class PotentialGridConfig(_Model):
-    """Grid on which the engine evaluates the electrostatic potential."""
-
-    spacing: float = Field(0.25, gt=0.02, le=2.0, description="grid spacing, Å")
-    margin: float = Field(4.0, ge=0.0, le=20.0, description="box margin around the atoms, Å")
-
-
-class PyscfEngineConfig(_Model):
-    """Embedded Kohn–Sham DFT through PySCF, in-process."""
-
-    kind: Literal["pyscf"] = "pyscf"
-    xc: str = Field("lda,vwn", description="exchange–correlation functional (PySCF name)")
-    basis: str = Field("sto-3g", description="Gaussian basis set (PySCF name)")
-    charge: int = Field(0, description="charge of the pristine host, e")
-    max_cycle: int = Field(100, ge=1, le=10000, description="SCF iteration cap")
-    conv_tol: float = Field(1e-8, gt=0.0, lt=1e-2, description="SCF energy tolerance, hartree")
-    level_shift: float = Field(0.0, ge=0.0, description="SCF level shift, hartree")
-    smearing: float = Field(0.0, ge=0.0, description="Fermi smearing width, eV (0: none)")
-    warm_start: bool = Field(True, description="start the SCF from the previous step's density")
-    density_fit: bool = Field(True, description="density-fit the Coulomb term (faster gradients)")
-    grid_level: int | None = Field(
-        None, ge=0, le=9, description="PySCF integration grid level, 0-9 (default: PySCF's, 3)"
-    )
-    threads: int | None = Field(None, ge=1, description="OpenMP threads (default: all)")
-    potential_grid: PotentialGridConfig = PotentialGridConfig()
-    potential_method: Literal["exact", "fitted"] = Field(
-        "exact", description="exact integrals over grid blocks, or density-fitted shortlist"
-    )
-
-
-# one engine kind so far; a discriminated union (default kind: pyscf) once there are more
-EngineConfig = PyscfEngineConfig
-
-
 class BoxRegion(_Model):
     """An axis-aligned box of Cartesian positions, Å; a point on a face counts as inside."""
 
@@ -176,6 +157,10 @@ class ScreenConfig(_Model):
     top: int = Field(3, ge=1, le=50, description="how many of the deepest wells are screened")
     engine: EngineConfig | None = Field(
         None, description="engine for the candidate energies (default: the campaign's engine)"
+    )
+
+    _kind = field_validator("engine", mode="before")(
+        classmethod(lambda cls, v: default_engine_kind(v))
     )
 
 
@@ -313,12 +298,17 @@ class StopConfig(_Model):
 class Campaign(_Model):
     """One insertion series: one host, one guest species, one engine, one placement rule."""
 
+    _kind = field_validator("engine", mode="before")(
+        classmethod(lambda cls, v: default_engine_kind(v))
+    )
+
     name: str = Field(pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$", description="folder name")
     description: str = ""
     seed: int = Field(0, ge=0, description="seed for every random choice of the campaign")
     host: HostConfig
     guest: GuestConfig = GuestConfig()
     engine: EngineConfig = PyscfEngineConfig()
+    launcher: LauncherConfig = LauncherConfig()
     placement: PlacementConfig = PlacementConfig()
     relax: RelaxConfig = RelaxConfig()
     checks: ChecksConfig = ChecksConfig()
@@ -367,7 +357,9 @@ def load_campaign(path: str | Path) -> Campaign:
         data = yaml.safe_load(text)
     except yaml.YAMLError as err:
         raise ConfigError(f"{path}: not valid YAML ({err})") from None
-    return parse_campaign(data, str(path))
+    from ionwell.engine_definitions import resolve_engines
+
+    return parse_campaign(resolve_engines(data, path.resolve().parent), str(path))
 
 
 def dump_campaign(campaign: Campaign) -> str:

@@ -103,9 +103,11 @@ def resolve_host_path(campaign: Campaign, base_dir: Path) -> Campaign:
 
 def campaign_from_workflow_config(config: dict, configfiles: list) -> tuple[Campaign, Path]:
     """Validate Snakemake's ``config`` dict; the base folder is that of the last config file."""
+    from ionwell.engine_definitions import resolve_engines
+
     source = str(configfiles[-1]) if configfiles else "snakemake config"
-    campaign = parse_campaign(dict(config), source)
     base = Path(configfiles[-1]).resolve().parent if configfiles else Path.cwd()
+    campaign = parse_campaign(resolve_engines(dict(config), base), source)
     return campaign, base
 
 
@@ -241,6 +243,8 @@ def _scf_variants(campaign: Campaign) -> list[tuple[str, Campaign]]:
     eng = campaign.engine
     rem = campaign.remedies
     out = [("as configured", campaign)]
+    if eng.kind != "pyscf":  # the SCF settings below are the embedded engine's
+        return out
     for name in rem.scf:
         if name == "more_cycles":
             upd = {"max_cycle": max(rem.more_cycles, eng.max_cycle)}
@@ -264,8 +268,9 @@ def _compute(campaign: Campaign, atoms: Atoms, workdir: Path, ctx: ComputeContex
             log.warning("step %04d: SCF not converged; retrying with %s", ctx.step, what)
         engine.prepare(atoms, workdir, ctx)
         if engine.argv(workdir, None) is not None:
-            raise IonwellError(f"step {ctx.step}: engine {engine.name} needs a launcher")
-        engine.run(workdir)
+            engine.launch(workdir, variant.launcher)
+        else:
+            engine.run(workdir)
         result, pot = engine.collect(workdir)
         if tried:
             tried.append(

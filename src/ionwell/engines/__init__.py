@@ -14,4 +14,8 @@ def get_engine(campaign) -> Engine:
         from ionwell.engines.pyscf_engine import PyscfEngine
 
         return PyscfEngine(campaign.engine, campaign.relax)
+    if kind == "command":
+        from ionwell.engines.command_engine import CommandEngine
+
+        return CommandEngine(campaign.engine, campaign.relax)
     raise ValueError(f"unknown engine kind {kind!r}")

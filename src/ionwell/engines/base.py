@@ -69,6 +69,14 @@ class StepResult(BaseModel):
     wall_time: float = Field(description="seconds")
     warm_started: bool = False
     potential_file: str | None = Field(None, description="grid file name beside result.json")
+    potential_model: str = Field(
+        "exact",
+        description="how the potential map was obtained: 'exact' (from the electron density), "
+        "or a model such as 'point charges (approximate)'",
+    )
+    notes: list[str] = Field(
+        default_factory=list, description="what the engine noticed (e.g. a missing proof line)"
+    )
 
     def atoms(self) -> Atoms:
         """The relaxed structure as ASE ``Atoms``."""

@@ -1,0 +1,499 @@
+"""Reading an engine's potential map file into a :class:`~ionwell.grid.Grid` (I/O at the edge).
+
+:func:`read_potential` reads the file named by an engine's ``outputs.potential``
+(:class:`~ionwell.engine_config.PotentialSpec`) and returns a grid in **volts**, in the
+**potential convention** (the potential felt by a positive test charge: nuclei are maxima).
+:func:`write_potential_npy` writes the NumPy array + JSON sidecar form that it reads.
+
+Formats (``spec.format``; ``auto`` chooses by suffix, case-insensitive):
+
+``cube`` (``.cube``, ``.cub``)
+    Gaussian cube, read by the fast :func:`ionwell.grid.read_cube`. Lengths follow the cube
+    convention (bohr, or Å for a negative point count). The file carries its atoms, which
+    ``sign: auto`` uses (the ``atoms`` argument only when the cube lists none).
+``npy`` (``.npy``) / ``npz`` (``.npz``)
+    A 3-D array (C order, third index fastest), with a JSON sidecar named ``<file>.json``
+    (``pot.npy`` → ``pot.npy.json``)::
+
+        {"origin": [x, y, z],                  # Å, position of point (0, 0, 0)
+         "axes": [[..], [..], [..]],           # Å, step vectors between neighbouring points
+         "shape": [n0, n1, n2],                # must equal the array's shape
+         "pbc": [false, false, false],         # optional, default all false
+         "unit": "V" | "hartree" | "rydberg",  # optional
+         "sign": "potential" | "electron"}     # optional
+
+    No other keys are accepted (a misspelt key is an error, not silently ignored). In an
+    ``.npz`` the array is ``values``, or else the only array in the archive. Either suffix may
+    hold either layout: the content decides. Integer and float arrays are accepted; float32
+    and float64 values keep their precision.
+``xsf`` (``.xsf``)
+    XCrySDen structure file with a ``DATAGRID_3D`` block, read by ``ase.io.xsf.read_xsf``
+    (first data grid only). XSF grids are *general* grids: ``n`` points run from the origin to
+    origin + spanning vector inclusive, so the step is ``span / (n - 1)``. Along an axis that
+    the file declares periodic (CRYSTAL, SLAB, POLYMER) and whose spanning vector equals the
+    cell vector, the last point repeats the first; it is dropped and the axis becomes periodic
+    in the grid. Lengths are Å (XSF's convention). The file's atoms serve ``sign: auto``.
+``ase``
+    Not supported: ASE has no general reader of volumetric data beyond cube and XSF, which
+    are handled above. Asking for it raises an error naming the supported formats.
+
+Units: ``spec.unit`` is the unit of the numbers stored in the file, for every format; they are
+multiplied by ``POTENTIAL_UNITS[unit]`` (volts per unit, from ``ase.units``: ``hartree`` is
+``ase.units.Hartree`` V per atomic unit of potential, hartree/e). The config is the single
+source: it is frozen with every default spelled out, so "set explicitly" cannot be told from
+"left at the default" and no rule may depend on it. Hence:
+
+- a **cube** holds atomic units by convention, but its numbers are read in ``spec.unit`` like
+  any other file: give ``unit: hartree`` for the usual cube (``spec.unit``'s default, ``V``,
+  reads the numbers as volts, with a logged warning). :func:`ionwell.grid.read_cube` already
+  multiplies by ``Hartree``, so only the ratio ``POTENTIAL_UNITS[unit] / Hartree`` is applied:
+  1 for hartree (no second conversion), ``1 / Hartree`` for volts;
+- a **sidecar**'s ``unit``, when present, must equal ``spec.unit``; otherwise reading fails
+  (two descriptions of one file that disagree: neither is trusted).
+
+Sign: ``spec.sign`` likewise. ``potential`` keeps the values, ``electron`` negates them,
+``auto`` asks :func:`ionwell.grid.detect_sign`, which needs atoms (the file's for cube and XSF,
+else the ``atoms`` argument; an error when there are none). A sidecar's ``sign`` must equal a
+definite ``spec.sign``; with ``sign: auto`` the sidecar's declaration is used instead of
+detection.
+
+(Should ``PotentialSpec`` ever allow ``unit``/``sign`` to be ``None``, it is read here as "what
+the file says": unit — the sidecar's, else hartree for a cube, else volts; sign — the
+sidecar's, else ``potential``.)
+
+Errors: every problem raises :class:`~ionwell.errors.EngineOutputError` with one message that
+starts with ``step N:`` (when a step is given) and the file, and says what was expected.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import math
+import zipfile
+from pathlib import Path
+from typing import Literal
+
+import numpy as np
+from ase import Atoms
+from pydantic import BaseModel, ConfigDict, ValidationError
+
+from ionwell.engine_config import POTENTIAL_UNITS, PotentialSpec
+from ionwell.errors import EngineOutputError, GridError
+from ionwell.grid import Grid, orient, read_cube
+
+__all__ = ["SUFFIXES", "read_potential", "sidecar_path", "write_potential_npy"]
+
+logger = logging.getLogger(__name__)
+
+#: File suffixes ``format: auto`` recognises, and the format each one selects.
+SUFFIXES = {".cube": "cube", ".cub": "cube", ".npy": "npy", ".npz": "npz", ".xsf": "xsf"}
+
+_SUPPORTED = "cube (.cube, .cub), npy (.npy), npz (.npz) with a JSON sidecar, xsf (.xsf)"
+_SIDECAR_KEYS = "origin, axes, shape, pbc, unit, sign"
+
+Unit = Literal["V", "hartree", "rydberg"]
+
+
+class _Sidecar(BaseModel):
+    """The JSON sidecar of a ``.npy``/``.npz`` potential map."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
+
+    origin: tuple[float, float, float]
+    axes: tuple[tuple[float, float, float], tuple[float, float, float], tuple[float, float, float]]
+    shape: tuple[int, int, int]
+    pbc: tuple[bool, bool, bool] = (False, False, False)
+    unit: Unit | None = None
+    sign: Literal["potential", "electron"] | None = None
+
+
+def sidecar_path(path: str | Path) -> Path:
+    """The JSON sidecar of a NumPy potential map: ``<file>.json`` beside it."""
+    path = Path(path)
+    return path.with_name(path.name + ".json")
+
+
+class _Fail:
+    """Builds one-line :class:`EngineOutputError` messages: ``step N: <file>: <what>``."""
+
+    def __init__(self, path: Path, step: int | None) -> None:
+        self.path = path
+        self.prefix = f"step {step}: " if step is not None else ""
+
+    def __call__(self, what: str, file: Path | None = None) -> EngineOutputError:
+        return EngineOutputError(f"{self.prefix}{file or self.path}: {what}")
+
+    def grid_error(self, err: GridError) -> EngineOutputError:
+        """Re-raise a GridError; its message names the file already when it starts with it."""
+        text = str(err)
+        if text.startswith(str(self.path)):
+            return EngineOutputError(self.prefix + text)
+        return self(text)
+
+
+# ---------------------------------------------------------------------------------------------
+# the public entry point
+
+
+def read_potential(
+    path: str | Path,
+    spec: PotentialSpec,
+    atoms: Atoms | None = None,
+    step: int | None = None,
+) -> Grid:
+    """Read a potential map and return it in volts, in the potential convention.
+
+    Args:
+        path: the map file (already resolved; ``spec.file`` is not used here).
+        spec: format, unit and sign of the file (see the module docstring for the rules when
+            the file itself declares a unit or sign).
+        atoms: the structure the map belongs to, for ``sign: auto`` when the file carries no
+            atoms (npy/npz); Å, in the same frame as the grid.
+        step: step number, named in error messages.
+
+    Returns:
+        The grid: values in volts (float64, or float32 when an npy/npz array is float32),
+        origin and axes in Å, positive at the nuclei.
+
+    Raises:
+        EngineOutputError: the file is missing, empty, truncated or malformed, its sidecar is
+            missing or invalid or disagrees with ``spec``, it holds non-finite values, its
+            format is unknown, or ``sign: auto`` cannot decide or has no atoms.
+    """
+    path = Path(path)
+    fail = _Fail(path, step)
+    fmt = _choose_format(path, spec.format, fail)
+    if not path.exists():
+        raise fail(f"the potential map file does not exist (expected the {fmt} map here)")
+    if not path.is_file():
+        raise fail(f"is not a file (expected the {fmt} potential map)")
+    try:
+        size = path.stat().st_size
+    except OSError as err:
+        raise fail(f"cannot read the potential map ({err.strerror or err})") from None
+    if size == 0:
+        raise fail(f"the file is empty (expected the {fmt} potential map)")
+
+    declared_unit: str | None = None  # what a sidecar states (a conflict is an error)
+    declared_sign: str | None = None
+    convention = "V"  # the format's own convention, used only when the config gives no unit
+    file_atoms: Atoms | None = None
+    if fmt == "cube":
+        grid, file_atoms = _read_cube(path, fail)
+        convention = "hartree"  # atomic units, hartree/e
+        raw_unit = "hartree"  # read_cube has multiplied by Hartree already
+    elif fmt in ("npy", "npz"):
+        grid, meta = _read_numpy(path, fail)
+        declared_unit, declared_sign = meta.unit, meta.sign
+        raw_unit = "V"  # values as stored
+    else:  # xsf
+        grid, file_atoms = _read_xsf(path, fail)
+        raw_unit = "V"
+
+    unit = _resolve("unit", spec.unit, declared_unit, fail) or convention
+    sign = _resolve("sign", spec.sign, declared_sign, fail) or "potential"
+    if fmt == "cube" and unit == "V":
+        logger.warning(
+            "%s: reading the cube's values as %s (config unit); cube files conventionally hold "
+            "atomic units, give unit: hartree if this one does",
+            path,
+            unit,
+        )
+
+    factor = POTENTIAL_UNITS[unit] / POTENTIAL_UNITS[raw_unit]
+    values = grid.values
+    if factor != 1.0:
+        values = values * factor
+    if not np.isfinite(values).all():
+        bad = np.argwhere(~np.isfinite(values))
+        raise fail(
+            f"{len(bad)} grid value(s) are not finite numbers (first at index "
+            f"{tuple(int(i) for i in bad[0])}: {values[tuple(bad[0])]}); expected a finite "
+            "potential everywhere"
+        )
+    grid = Grid(origin=grid.origin, axes=grid.axes, values=values, pbc=grid.pbc)
+
+    if sign == "auto":
+        reference = file_atoms if file_atoms is not None and len(file_atoms) else atoms
+        if reference is None or len(reference) == 0:
+            raise fail(
+                "sign: auto needs the atoms to find the nuclei, and neither the file nor the "
+                "caller provides any; give sign: potential or sign: electron"
+            )
+    else:
+        reference = atoms if atoms is not None else Atoms()
+    try:
+        grid = orient(grid, reference, sign)
+    except GridError as err:
+        raise fail.grid_error(err) from None
+    logger.debug(
+        "read %s potential map %s: shape %s, unit %s, sign %s", fmt, path, grid.shape, unit, sign
+    )
+    return grid
+
+
+def _choose_format(path: Path, fmt: str, fail: _Fail) -> str:
+    if fmt == "ase":
+        raise fail(
+            "format 'ase' is not supported (ASE reads volumetric data only from cube and XSF "
+            f"files, which ionwell reads itself); supported formats: {_SUPPORTED}"
+        )
+    if fmt == "auto":
+        chosen = SUFFIXES.get(path.suffix.lower())
+        if chosen is None:
+            raise fail(
+                f"cannot tell the format of the potential map from its suffix "
+                f"{path.suffix or '(none)'!r}; expected one of {_SUPPORTED}, or give "
+                "format: explicitly"
+            )
+        return chosen
+    if fmt not in ("cube", "npy", "npz", "xsf"):
+        raise fail(f"unknown potential map format {fmt!r}; supported formats: {_SUPPORTED}")
+    return fmt
+
+
+def _resolve(name: str, configured: str | None, declared: str | None, fail: _Fail) -> str | None:
+    """The unit or sign in force: the config's, checked against the sidecar's declaration.
+
+    ``auto`` (sign) and ``None`` defer to the declaration; None when neither says anything.
+    """
+    if configured is None or configured == "auto":
+        return declared if declared is not None else configured
+    if declared is not None and configured != declared:
+        raise fail(
+            f"the config gives {name} {configured!r} but the sidecar declares {declared!r}; "
+            f"make them agree (set {name}: {declared} in the engine's potential output if the "
+            "sidecar is right)"
+        )
+    return configured
+
+
+# ---------------------------------------------------------------------------------------------
+# cube
+
+
+def _read_cube(path: Path, fail: _Fail) -> tuple[Grid, Atoms]:
+    """ionwell's fast reader: values come back as hartree/e × ``Hartree`` (volts)."""
+    try:
+        return read_cube(path)
+    except GridError as err:
+        raise fail.grid_error(err) from None
+
+
+# ---------------------------------------------------------------------------------------------
+# npy / npz + sidecar
+
+
+def _read_sidecar(path: Path, fail: _Fail) -> _Sidecar:
+    side = sidecar_path(path)
+    if not side.is_file():
+        raise fail(
+            f"the JSON sidecar {side.name} describing the grid is missing (expected keys "
+            f"{_SIDECAR_KEYS} beside the array file)"
+        )
+    try:
+        data = json.loads(side.read_text())
+    except OSError as err:
+        raise fail(f"cannot read the sidecar ({err.strerror or err})", side) from None
+    except (json.JSONDecodeError, UnicodeDecodeError) as err:
+        raise fail(f"the sidecar is not valid JSON ({err}); expected an object", side) from None
+    if not isinstance(data, dict):
+        raise fail(
+            f"the sidecar holds a {type(data).__name__}; expected a JSON object with keys "
+            f"{_SIDECAR_KEYS}",
+            side,
+        )
+    try:
+        return _Sidecar.model_validate(data)
+    except ValidationError as err:
+        problems = "; ".join(
+            f"{'.'.join(str(p) for p in e['loc']) or '(top)'}: {e['msg']}" for e in err.errors()
+        )
+        raise fail(
+            f"invalid sidecar ({problems}); expected keys {_SIDECAR_KEYS} (origin [3] Å, "
+            "axes [[3],[3],[3]] Å, shape [3], optional pbc [3], unit, sign)",
+            side,
+        ) from None
+
+
+_NPY_MAGIC = b"\x93NUMPY"
+_ZIP_MAGIC = b"PK\x03\x04"
+
+
+def _load_array(path: Path, fail: _Fail) -> np.ndarray:
+    try:
+        with path.open("rb") as f:
+            magic = f.read(6)
+    except OSError as err:
+        raise fail(f"cannot read the array file ({err.strerror or err})") from None
+    if not (magic.startswith(_NPY_MAGIC) or magic.startswith(_ZIP_MAGIC)):
+        raise fail(
+            "not a NumPy .npy file or .npz archive (it does not start with their magic bytes); "
+            "expected a 3-D numeric array"
+        )
+    try:
+        loaded = np.load(path, allow_pickle=False)
+    except OSError as err:
+        raise fail(f"cannot read the array file ({err.strerror or err})") from None
+    except (ValueError, EOFError, zipfile.BadZipFile) as err:
+        raise fail(
+            f"not a readable NumPy .npy/.npz file ({err}; truncated or corrupt?); expected a "
+            "3-D numeric array"
+        ) from None
+    if isinstance(loaded, np.ndarray):
+        return loaded
+    try:
+        with loaded as z:
+            names = list(z.files)
+            if "values" in names:
+                key = "values"
+            elif len(names) == 1:
+                key = names[0]
+            else:
+                raise fail(
+                    f"the .npz archive holds arrays {names or '(none)'}; expected one named "
+                    "'values' or a single array"
+                )
+            return z[key]
+    except EngineOutputError:
+        raise
+    except Exception as err:  # zip member errors of all kinds: truncated or corrupt archive
+        raise fail(f"the .npz archive cannot be read ({err}); it may be truncated") from None
+
+
+def _read_numpy(path: Path, fail: _Fail) -> tuple[Grid, _Sidecar]:
+    meta = _read_sidecar(path, fail)
+    values = _load_array(path, fail)
+    if values.dtype.kind in "iub":
+        values = values.astype(np.float64)
+    elif values.dtype.kind != "f":
+        raise fail(f"the array has dtype {values.dtype}; expected real numbers")
+    elif values.dtype not in (np.float32, np.float64):
+        values = values.astype(np.float64)
+    if values.shape != meta.shape:
+        raise fail(
+            f"the array has shape {values.shape} but the sidecar {sidecar_path(path).name} "
+            f"gives shape {list(meta.shape)}; expected the same grid size"
+        )
+    if min(meta.shape) < 1:
+        raise fail(f"the grid has shape {list(meta.shape)}; expected at least one point per axis")
+    axes = np.array(meta.axes, dtype=float)
+    if abs(np.linalg.det(axes)) < 1e-12:
+        raise fail(
+            f"the sidecar's axes {meta.axes} are linearly dependent (a flat grid); expected three "
+            "independent step vectors"
+        )
+    grid = Grid(origin=np.array(meta.origin, dtype=float), axes=axes, values=values, pbc=meta.pbc)
+    return grid, meta
+
+
+def write_potential_npy(path: str | Path, grid: Grid, unit: Unit = "V") -> None:
+    """Write ``grid`` (volts) as a NumPy array file plus its JSON sidecar ``<file>.json``.
+
+    A path ending in ``.npz`` gets an uncompressed archive with the array ``values``; any other
+    path gets a ``.npy`` file at exactly ``path``. Values are stored in ``unit`` (divided by
+    ``POTENTIAL_UNITS[unit]``; with ``"V"`` untouched, so the dtype and every bit are kept) and
+    the sidecar records origin, axes, shape, pbc, the unit and ``sign: potential``. Floats go
+    to JSON with ``repr`` precision, so origin and axes round-trip exactly.
+
+    Raises:
+        EngineOutputError: the files cannot be written, or ``unit`` is unknown.
+    """
+    path = Path(path)
+    if unit not in POTENTIAL_UNITS:
+        raise EngineOutputError(
+            f"{path}: unknown potential unit {unit!r}; expected one of {sorted(POTENTIAL_UNITS)}"
+        )
+    values = np.ascontiguousarray(grid.values)
+    if unit != "V":
+        values = values / POTENTIAL_UNITS[unit]
+    meta = {
+        "origin": [float(x) for x in np.asarray(grid.origin, dtype=float)],
+        "axes": [[float(x) for x in row] for row in np.asarray(grid.axes, dtype=float)],
+        "shape": [int(n) for n in values.shape],
+        "pbc": [bool(p) for p in grid.pbc],
+        "unit": unit,
+        "sign": "potential",
+    }
+    if not all(math.isfinite(x) for x in meta["origin"] + sum(meta["axes"], [])):
+        raise EngineOutputError(f"{path}: the grid's origin or axes are not finite")
+    try:
+        with path.open("wb") as f:
+            if path.suffix.lower() == ".npz":
+                np.savez(f, values=values)
+            else:
+                np.save(f, values, allow_pickle=False)
+        sidecar_path(path).write_text(json.dumps(meta, indent=1) + "\n")
+    except OSError as err:
+        raise EngineOutputError(
+            f"{path}: cannot write the potential map ({err.strerror or err})"
+        ) from None
+
+
+# ---------------------------------------------------------------------------------------------
+# XSF
+
+
+def _read_xsf(path: Path, fail: _Fail) -> tuple[Grid, Atoms]:
+    from ase.io.xsf import read_xsf
+
+    try:
+        with path.open() as f:
+            data, origin, span, atoms = read_xsf(f, read_data=True)
+    except OSError as err:
+        raise fail(f"cannot read the XSF file ({err.strerror or err})") from None
+    except (StopIteration, RuntimeError) as err:
+        # the reader is a generator: running out of lines inside it is a RuntimeError (PEP 479)
+        if isinstance(err, RuntimeError) and not isinstance(err.__cause__, StopIteration):
+            raise fail(f"the XSF file cannot be read (RuntimeError: {err})") from None
+        raise fail(
+            "the XSF file ends early; expected a structure and a complete "
+            "BEGIN_BLOCK_DATAGRID_3D ... END_BLOCK_DATAGRID_3D block (truncated?)"
+        ) from None
+    except UnboundLocalError:
+        raise fail(
+            "the XSF file has no BEGIN_BLOCK_DATAGRID_3D block after its atoms; expected a 3-D "
+            "data grid"
+        ) from None
+    except AssertionError:
+        raise fail(
+            "the XSF file is malformed: ASE's reader expected a CRYSTAL/SLAB/POLYMER/ATOMS "
+            "section followed by one BEGIN_BLOCK_DATAGRID_3D block whose value count equals "
+            "nx×ny×nz (truncated or not a 3-D data grid?)"
+        ) from None
+    except Exception as err:  # ValueError, KeyError, IndexError: bad numbers or symbols
+        raise fail(f"the XSF file cannot be read ({type(err).__name__}: {err})") from None
+    values = np.asarray(data, dtype=float)
+    span = np.asarray(span, dtype=float)
+    if values.ndim != 3 or span.shape != (3, 3) or np.asarray(origin).shape != (3,):
+        raise fail(
+            f"the XSF data grid has {values.ndim} dimensions; expected a 3-D data grid with an "
+            "origin and three spanning vectors"
+        )
+    if min(values.shape) < 2:
+        raise fail(
+            f"the XSF data grid has shape {list(values.shape)}; expected at least two points "
+            "per axis (a general grid includes both ends)"
+        )
+    pbc = [False, False, False]
+    cell = np.asarray(atoms.cell[:], dtype=float)
+    for ax in range(3):
+        # a periodic general grid repeats its first plane at the end of a cell-sized span
+        if atoms.pbc[ax] and np.allclose(span[ax], cell[ax], rtol=1e-6, atol=1e-5):
+            pbc[ax] = True
+    axes = span / (np.asarray(values.shape, dtype=float)[:, None] - 1.0)
+    values = values[
+        slice(None, -1) if pbc[0] else slice(None),
+        slice(None, -1) if pbc[1] else slice(None),
+        slice(None, -1) if pbc[2] else slice(None),
+    ]
+    if abs(np.linalg.det(axes)) < 1e-12:
+        raise fail("the XSF spanning vectors are linearly dependent (a flat grid)")
+    grid = Grid(
+        origin=np.asarray(origin, dtype=float),
+        axes=axes,
+        values=np.ascontiguousarray(values),
+        pbc=tuple(pbc),  # type: ignore[arg-type]
+    )
+    return grid, atoms

@@ -1,0 +1,393 @@
+"""The ``command`` engine and the launcher, driving a real DFT program through files.
+
+The external program is ``tests/programs/pyscf_runner.py``: PySCF behind a text interface (a
+plain input, a text log, a restartable checkpoint, a Gaussian cube of the potential in atomic
+units written by ``pyscf.tools.cubegen.mep``). It stands in for a compiled code on a cluster.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import shutil
+import signal
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import yaml
+from ase import Atoms
+from ase.build import molecule
+from ase.io import write
+from ase.units import Hartree
+
+from ionwell.config import LauncherConfig
+from ionwell.engines import get_engine
+from ionwell.engines.base import ComputeContext
+from ionwell.errors import ConfigError, EngineOutputError
+from ionwell.launcher import EngineRunError, command_line, run_program
+
+RUNNER = Path(__file__).parent / "programs" / "pyscf_runner.py"
+
+TEMPLATE = """# pyscf-runner input written by ionwell, step ${step}
+charge ${charge}
+spin ${spin}
+restart ${restart}
+basis sto-3g
+xc lda,vwn
+grid_level 1
+spacing 0.3
+margin 3.0
+geometry
+${structure}
+end
+"""
+
+COMMAND = {
+    "kind": "command",
+    "label": "pyscf-runner",
+    "version": "test",
+    "input": {"file": "job.inp", "template": "runner.tmpl"},
+    "argv": [sys.executable, str(RUNNER), "${input}"],
+    "stdout": "job.log",
+    "outputs": {
+        "energy": {"file": "job.log", "regex": r"^total energy\s+(\S+) hartree", "unit": "hartree"},
+        "potential": {"file": "potential.cube", "unit": "hartree", "sign": "potential"},
+        "charges": {
+            "file": "job.log",
+            "regex": r"^atom\s+\d+\s+\S+\s+charge\s+(\S+)",
+            "scheme": "mulliken",
+        },
+        "homo": {"file": "job.log", "regex": r"^homo\s+(\S+) hartree", "unit": "hartree"},
+    },
+    "converged": {"scf": {"file": "job.log", "regex": r"^SCF converged"}},
+    "restart": {"keep": ["runner.chk"], "previous": ["runner.chk"], "value": "yes", "fresh": "no"},
+}
+
+
+def _campaign(tmp: Path, engine: dict | None = None, **extra):
+    (tmp / "runner.tmpl").write_text(TEMPLATE)
+    data = {
+        "name": "cmd",
+        "host": {"builder": {"layers": 1, "shells": 1}},
+        "engine": engine or COMMAND,
+        "relax": {"enabled": False},
+        **extra,
+    }
+    cfg = tmp / "cmd.yaml"
+    cfg.write_text(yaml.safe_dump(data))
+    from ionwell.config import load_campaign
+
+    return load_campaign(cfg)
+
+
+# ---------------------------------------------------------------------------------------------
+# launcher (fast)
+
+
+def test_launcher_prefixes_and_modules_keep_arguments_apart():
+    argv = ["prog", "-in", "${input}", "a b; rm -rf /"]
+    vals = {"input": "job.inp"}
+    assert command_line(argv, LauncherConfig(), vals) == ["prog", "-in", "job.inp", "a b; rm -rf /"]
+    mpi = command_line(argv, LauncherConfig(kind="mpi", tasks=4), vals)
+    assert mpi[:3] == ["mpirun", "-np", "4"] and mpi[3:] == [
+        "prog",
+        "-in",
+        "job.inp",
+        "a b; rm -rf /",
+    ]
+    srun = command_line(argv, LauncherConfig(kind="srun", tasks=2, threads=8), vals)
+    assert srun[:3] == ["srun", "--ntasks=2", "--cpus-per-task=8"]
+    mod = command_line(argv, LauncherConfig(modules=["qe/7.2", "intel"]), vals)
+    # module names and program arguments are positional parameters of the snippet, never
+    # spliced into it
+    assert mod[:2] == ["bash", "-lc"] and "rm -rf" not in mod[2]
+    assert mod[4:] == ["2", "qe/7.2", "intel", "prog", "-in", "job.inp", "a b; rm -rf /"]
+    with pytest.raises(ConfigError, match=r"unknown placeholder \$\{nope\}"):
+        command_line(["x", "${nope}"], LauncherConfig(), vals)
+
+
+def test_modules_snippet_runs_the_program_with_its_arguments(tmp_path):
+    # a fake 'module' shell function stands in for environment modules (not installed here)
+    full = command_line(
+        [sys.executable, "-c", "import sys; print(sys.argv[1:])", "x y", "$$HOME"],  # $$: literal
+        LauncherConfig(modules=["m1"]),
+        {},
+    )
+    full[2] = 'module() { echo loaded "$@"; }; ' + full[2]
+    out = subprocess.run(full, capture_output=True, text=True, check=True).stdout
+    assert "loaded load m1" in out and "['x y', '$HOME']" in out
+
+
+def test_run_program_env_scratch_and_errors(tmp_path):
+    work = tmp_path / "engine"
+    work.mkdir()
+    (work / "in.txt").write_text("hello")
+    scratch = tmp_path / "scratch"
+    scratch.mkdir()
+    code = (
+        "import os, pathlib; p = pathlib.Path('out.txt'); "
+        "p.write_text(pathlib.Path('in.txt').read_text() + os.environ['IW_TEST'] + os.getcwd())"
+    )
+    cfg = LauncherConfig(env={"IW_TEST": "-env"}, scratch=str(scratch))
+    run_program([sys.executable, "-c", code], work, cfg, stdout="log.txt", step=4)
+    text = (work / "out.txt").read_text()
+    assert text.startswith("hello-env") and str(scratch) in text  # ran in scratch, copied back
+    assert list(scratch.iterdir()) == []  # scratch folder removed
+
+    with pytest.raises(EngineRunError, match=r"step 4: cannot start 'no-such-program-x'"):
+        run_program(["no-such-program-x"], work, LauncherConfig(), stdout=None, step=4)
+    fail = [sys.executable, "-c", "print('bad input line 7'); raise SystemExit(3)"]
+    with pytest.raises(EngineRunError, match=r"(?s)exited with code 3.*bad input line 7"):
+        run_program(fail, work, LauncherConfig(), stdout="log.txt", step=4)
+    slow = [sys.executable, "-c", "import time; time.sleep(30)"]
+    with pytest.raises(EngineRunError, match="timeout"):
+        run_program(slow, work, LauncherConfig(), stdout=None, timeout=1.0)
+
+
+# ---------------------------------------------------------------------------------------------
+# the engine on one real run (fast: water, STO-3G)
+
+
+@pytest.fixture(scope="module")
+def water_run(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("water")
+    campaign = _campaign(tmp)
+    engine = get_engine(campaign)
+    work = tmp / "engine"
+    atoms = molecule("H2O")
+    engine.prepare(atoms, work, ComputeContext(step=2, charge=0))
+    engine.launch(work, campaign.launcher)
+    return campaign, engine, work, atoms
+
+
+def test_template_input_and_state(water_run):
+    campaign, engine, work, atoms = water_run
+    text = (work / "job.inp").read_text()
+    assert "step 2" in text and "charge 0" in text and "spin 0" in text and "restart no" in text
+    assert text.count("\n") == TEMPLATE.count("\n") + len(atoms) - 1
+    # the template's text is part of the validated (and so the frozen) config
+    assert campaign.engine.input.template_text == TEMPLATE
+    state = json.loads((work / "command.json").read_text())
+    assert state["restart"] is None and state["seconds"] > 0
+
+
+def test_collect_matches_pyscf_directly(water_run):
+    """Energy, charges and potential agree with PySCF called directly (reference library)."""
+    from pyscf import dft, gto
+
+    _, engine, work, atoms = water_run
+    result, grid = engine.collect(work)
+    mol = gto.M(atom=[(a.symbol, tuple(a.position)) for a in atoms], basis="sto-3g", verbose=0)
+    mf = dft.RKS(mol)
+    mf.xc, mf.grids.level, mf.conv_tol = "lda,vwn", 1, 1e-9
+    e = mf.kernel() * Hartree
+    assert abs(result.energy - e) < 1e-5
+    assert result.scf_converged and result.notes == []
+    assert result.charge_scheme == "mulliken" and abs(sum(result.charges)) < 1e-6
+    assert result.code == "pyscf-runner" and result.homo < 0
+    # the map is in volts, potential convention: far from a neutral molecule it is small, at
+    # the oxygen nucleus it is a large positive maximum
+    assert grid.values.max() > 100 and abs(np.median(grid.values)) < 1.0
+
+
+@pytest.mark.parametrize(
+    ("damage", "expected"),
+    [
+        ("missing-potential", r"step 2: .*potential\.cube: missing \(expected the potential map\)"),
+        ("truncated-cube", r"step 2: .*potential\.cube"),
+        ("nan-energy", r"step 2: .*job\.log: the total energy is nan"),
+        ("no-energy", r"step 2: .*job\.log: no line matching .*expected the total energy"),
+        ("empty-log", r"step 2: .*job\.log: empty"),
+        ("nan-cube", r"step 2: .*potential\.cube"),
+        (
+            "few-charges",
+            r"step 2: .*job\.log: 2 lines match the charge pattern, expected at least 3",
+        ),
+    ],
+)
+def test_malformed_outputs_give_one_clear_error(water_run, tmp_path, damage, expected):
+    _, engine, work, _ = water_run
+    copy = tmp_path / "engine"
+    shutil.copytree(work, copy)
+    log, cube = copy / "job.log", copy / "potential.cube"
+    text = log.read_text()
+    if damage == "missing-potential":
+        cube.unlink()
+    elif damage == "truncated-cube":
+        lines = cube.read_text().splitlines()
+        cube.write_text("\n".join(lines[: len(lines) // 2]) + "\n")
+    elif damage == "nan-energy":
+        log.write_text(re.sub(r"total energy \S+ hartree", "total energy NaN hartree", text))
+    elif damage == "no-energy":
+        log.write_text("\n".join(x for x in text.splitlines() if "total energy" not in x))
+    elif damage == "empty-log":
+        log.write_text("")
+    elif damage == "nan-cube":
+        lines = cube.read_text().splitlines()
+        lines[-1] = " ".join(["NaN"] * len(lines[-1].split()))
+        cube.write_text("\n".join(lines) + "\n")
+    elif damage == "few-charges":
+        log.write_text("\n".join(x for x in text.splitlines() if " O " not in x))
+    with pytest.raises(EngineOutputError, match=expected) as info:
+        engine.collect(copy)
+    assert "Traceback" not in str(info.value)
+
+
+def test_missing_convergence_line_is_a_finding_not_a_crash(water_run, tmp_path):
+    _, engine, work, _ = water_run
+    copy = tmp_path / "engine"
+    shutil.copytree(work, copy)
+    log = copy / "job.log"
+    log.write_text(log.read_text().replace("SCF converged", "SCF stopped"))
+    result, _ = engine.collect(copy)
+    assert result.scf_converged is False
+    assert result.notes == [
+        "job.log: no line matching '^SCF converged' (SCF convergence not proven)"
+    ]
+
+
+def test_bad_engine_configs_are_named(tmp_path):
+    bad = {
+        **COMMAND,
+        "outputs": {**COMMAND["outputs"], "energy": {"file": "x", "regex": "no group"}},
+    }
+    with pytest.raises(ConfigError, match=r"engine\.command\.outputs\.energy.*capturing group"):
+        _campaign(tmp_path, bad)
+    bad = {**COMMAND, "input": {"file": "job.inp", "template": "missing.tmpl"}}
+    with pytest.raises(ConfigError, match=r"engine\.input\.template: cannot read .*missing\.tmpl"):
+        _campaign(tmp_path, bad)
+    with pytest.raises(ConfigError, match=r"no definition named 'nope'"):
+        _campaign(tmp_path, {"kind": "command", "definition": "nope"})
+
+
+# ---------------------------------------------------------------------------------------------
+# campaigns through the command engine (slow)
+
+
+# a benzene ring with its atoms moved by up to 0.04 Å (seeded): no symmetry is left, so no two
+# wells tie and both engines must find the same order of wells on their own grids
+def _host_file(tmp: Path) -> Path:
+    ring = molecule("C6H6")
+    rng = np.random.default_rng(11)
+    ring.positions += rng.uniform(-0.04, 0.04, ring.positions.shape)
+    f = tmp / "ring.extxyz"
+    write(f, Atoms(ring.get_chemical_symbols(), positions=ring.positions))
+    return f
+
+
+def _run(tmp: Path, name: str, engine: dict, env: dict | None = None, timeout=900):
+    (tmp / "runner.tmpl").write_text(TEMPLATE)
+    data = {
+        "name": name,
+        "host": {"file": str(_host_file(tmp))},
+        "guest": {"element": "Li", "charge_mode": "cation"},
+        "engine": engine,
+        "placement": {"within": 3.0},
+        "relax": {"enabled": False},
+        "stop": {"guests": 2},
+    }
+    if env:
+        data["launcher"] = {"env": env}
+    cfg = tmp / f"{name}.yaml"
+    cfg.write_text(yaml.safe_dump(data))
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "ionwell.cli", "run", str(cfg), "--root", str(tmp)],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
+    return proc
+
+
+@pytest.mark.slow
+def test_command_engine_campaign_matches_the_embedded_engine(tmp_path):
+    from ionwell.campaign import CampaignPaths
+    from ionwell.ledger import read_ledger
+
+    embedded = {
+        "xc": "lda,vwn",
+        "basis": "sto-3g",
+        "grid_level": 1,
+        "density_fit": False,
+        "conv_tol": 1e-9,
+        "potential_grid": {"spacing": 0.3, "margin": 3.0},
+    }
+    runs = {}
+    for name, engine in (("via-command", COMMAND), ("in-process", embedded)):
+        proc = _run(tmp_path, name, engine)
+        out, err = proc.communicate(timeout=900)
+        assert proc.returncode == 0, err[-3000:]
+        runs[name] = read_ledger(CampaignPaths(tmp_path / "campaigns" / name).ledger)
+    a, b = runs["via-command"], runs["in-process"]
+    assert [r.guests for r in a] == [r.guests for r in b] == [0, 1, 2]
+    for ra, rb in zip(a[:2], b[:2], strict=True):
+        pa, pb = ra.decision.chosen[0].position, rb.decision.chosen[0].position
+        assert np.linalg.norm(np.subtract(pa, pb)) < 0.05, (ra.step, pa, pb)
+    # same physics, same numbers: energies from the two routes agree (PySCF both ways)
+    np.testing.assert_allclose([r.energy for r in a], [r.energy for r in b], atol=1e-4)
+    assert a[0].engine == "pyscf-runner" and b[0].engine == "pyscf"
+
+
+def _runner_pids(workdir: Path) -> list[int]:
+    pids = []
+    for p in Path("/proc").iterdir():
+        if not p.name.isdigit():
+            continue
+        try:
+            cmd = (p / "cmdline").read_bytes().split(b"\0")
+            cwd = os.readlink(p / "cwd")
+        except OSError:
+            continue
+        if any(c.endswith(b"pyscf_runner.py") for c in cmd) and Path(cwd) == workdir:
+            pids.append(int(p.name))
+    return pids
+
+
+@pytest.mark.slow
+def test_killed_program_is_retried_and_restarts_from_its_checkpoint(tmp_path):
+    from ionwell.campaign import CampaignPaths
+    from ionwell.ledger import read_ledger
+
+    work = tmp_path / "campaigns" / "killed" / "steps" / "0001" / "engine"
+    killed: list[int] = []
+
+    def kill_mid_scf() -> None:
+        deadline = time.monotonic() + 600
+        while time.monotonic() < deadline and not killed:
+            log = work / "job.log"
+            if (
+                (work / "runner.chk").is_file()
+                and log.is_file()
+                and "iteration 3" in log.read_text()
+            ):
+                for pid in _runner_pids(work.resolve()):
+                    os.kill(pid, signal.SIGKILL)
+                    killed.append(pid)
+            time.sleep(0.05)
+
+    watcher = threading.Thread(target=kill_mid_scf, daemon=True)
+    watcher.start()
+    # the delay after each SCF iteration (an environment variable set through the launcher)
+    # leaves time to kill the program mid-run
+    proc = _run(tmp_path, "killed", COMMAND, env={"RUNNER_DELAY": "0.3"})
+    out, err = proc.communicate(timeout=900)
+    watcher.join(timeout=1)
+    assert killed, "the program was never seen running"
+    assert proc.returncode == 0, err[-3000:]
+    recs = read_ledger(CampaignPaths(tmp_path / "campaigns" / "killed").ledger)
+    assert [r.guests for r in recs] == [0, 1, 2] and all(r.scf_converged for r in recs)
+    # the retried attempt found the killed attempt's checkpoint and the program used it
+    assert "restart: initial guess from runner.chk" in (work / "job.log").read_text()
+    assert json.loads((work / "command.json").read_text())["restart"] == "earlier attempt"
+    events = [
+        json.loads(x)
+        for x in (tmp_path / "campaigns" / "killed" / "events.jsonl").read_text().splitlines()
+    ]
+    failed = [e for e in events if e["event"] == "failed" and e["step"] == 1]
+    assert failed and "killed by signal 9" in failed[0]["message"]
