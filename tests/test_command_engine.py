@@ -26,7 +26,7 @@ from ase.build import molecule
 from ase.io import write
 from ase.units import Hartree
 
-from ionwell.config import LauncherConfig
+from ionwell.config import LauncherConfig, parse_campaign
 from ionwell.engines import get_engine
 from ionwell.engines.base import ComputeContext
 from ionwell.errors import ConfigError, EngineOutputError
@@ -391,3 +391,75 @@ def test_killed_program_is_retried_and_restarts_from_its_checkpoint(tmp_path):
     ]
     failed = [e for e in events if e["event"] == "failed" and e["step"] == 1]
     assert failed and "killed by signal 9" in failed[0]["message"]
+
+
+# ---------------------------------------------------------------------------------------------
+# engine definitions and `ionwell engines`
+
+
+def _user_definition(folder: Path) -> Path:
+    """The runner as a user's own definition file (no Python), in <config dir>/engines/."""
+    d = folder / "engines"
+    d.mkdir(parents=True, exist_ok=True)
+    (d / "runner.tmpl").write_text(TEMPLATE)
+    (d / "my-runner.yaml").write_text(yaml.safe_dump({**COMMAND, "label": "my-runner"}))
+    return d
+
+
+def test_engines_lists_kinds_and_definitions_and_checks_one(tmp_path):
+    _user_definition(tmp_path)
+    ionwell = [sys.executable, "-m", "ionwell.cli", "engines"]
+    out = subprocess.run([*ionwell, "--config-dir", str(tmp_path)], capture_output=True, text=True)
+    assert out.returncode == 0, out.stderr
+    for word in ("pyscf", "tblite", "ase", "command", "my-runner", "quantum-espresso", "cp2k"):
+        assert word in out.stdout
+    chk = subprocess.run(
+        [*ionwell, "check", "my-runner", "--config-dir", str(tmp_path), "--json"],
+        capture_output=True,
+        text=True,
+    )
+    assert chk.returncode == 0, chk.stdout + chk.stderr
+    report = json.loads(chk.stdout)
+    assert report["ok"] and report["kind"] == "command" and report["scf_converged"]
+    # H2 at 0.74 Å, LDA/STO-3G: about -1.03 hartree = -28.1 eV (PySCF; checked against the
+    # embedded engine on the same probe below)
+    emb = subprocess.run([*ionwell, "check", "pyscf", "--json"], capture_output=True, text=True)
+    assert emb.returncode == 0, emb.stdout + emb.stderr
+    assert abs(json.loads(emb.stdout)["energy"] - report["energy"]) < 0.1
+    assert report["charge_scheme"] == "mulliken" and len(report["charges"]) == 2
+    # a definition whose program is absent is reported, not crashed on
+    qe = subprocess.run([*ionwell, "check", "quantum-espresso"], capture_output=True, text=True)
+    if shutil.which("pw.x") is None:
+        assert qe.returncode == 3 and "not installed here" in qe.stdout
+
+
+def test_shipped_definitions_write_their_inputs(tmp_path):
+    from ionwell.engine_definitions import resolve_engines
+
+    atoms = molecule("C6H6")
+    atoms.cell = [16.0, 16.0, 12.0]
+    atoms.center()
+    for name, infile, expect in (
+        ("quantum-espresso", "pw.in", ["tot_charge", "restart_mode", "from_scratch", "C.pbe"]),
+        # C6H6⁺ has 41 electrons: a doublet, unrestricted
+        ("cp2k", "cp2k.inp", ["CHARGE 1", "SCF_GUESS ATOMIC", "MULTIPLICITY 2", "UKS true", "ABC"]),
+    ):
+        data = {
+            "name": "d",
+            "host": {"builder": {"shells": 1, "layers": 1}},
+            "engine": {"definition": name},
+        }
+        campaign = parse_campaign(resolve_engines(data, tmp_path), name)
+        engine = get_engine(campaign)
+        work = tmp_path / name
+        engine.prepare(atoms, work, ComputeContext(step=0, charge=1))
+        text = (work / infile).read_text()
+        for word in expect:
+            assert word in text, (name, word)
+        assert "${" not in text
+    # the QE input says the charge as a number and reads back with ASE's own reader
+    from ase.io.espresso import read_fortran_namelist
+
+    with open(tmp_path / "quantum-espresso" / "pw.in") as f:
+        namelist, _ = read_fortran_namelist(f)
+    assert namelist["system"]["tot_charge"] == 1

@@ -534,3 +534,29 @@ def test_unit_and_sign_left_to_the_file(tmp_path):
     ref_data, _ = read_cube_data(str(cube))
     spec = PotentialSpec.model_construct(file="pot.cube", format="auto", unit=None, sign=None)
     np.testing.assert_array_equal(read_potential(cube, spec).values, ref_data * Hartree)
+
+
+def test_a_map_written_in_a_shifted_frame_is_moved_back(tmp_path):
+    # a program that centres the molecule in its box writes the cube in that frame; the map is
+    # moved by the one shift that maps the cube's atoms onto ours (values unchanged)
+    from ase.build import molecule
+    from ase.io.cube import write_cube as ase_write_cube
+
+    ours = molecule("H2O")
+    theirs = ours.copy()
+    theirs.positions += [5.0, 4.0, 3.0]
+    theirs.cell = [6.0, 7.0, 8.0]  # ASE takes the cube steps from the cell
+    data = np.random.default_rng(0).normal(size=(6, 7, 8))
+    path = tmp_path / "shifted.cube"
+    with path.open("w") as f:
+        ase_write_cube(f, theirs, data, origin=[1.0, 1.0, 1.0])
+    spec = PotentialSpec(file=path.name, unit="hartree", sign="potential")
+    plain = read_potential(path, spec)
+    moved = read_potential(path, spec, atoms=ours, step=1)
+    np.testing.assert_allclose(moved.origin, np.asarray(plain.origin) - [5.0, 4.0, 3.0], atol=1e-6)
+    np.testing.assert_array_equal(moved.values, plain.values)
+    # atoms moved differently: the map does not belong to the structure
+    other = ours.copy()
+    other.positions[0] += [0.5, 0, 0]
+    with pytest.raises(EngineOutputError, match="step 1: .*not the structure's atoms"):
+        read_potential(path, spec, atoms=other, step=1)

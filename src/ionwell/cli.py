@@ -4,6 +4,7 @@ ionwell run CONFIG.yaml            run or resume a campaign (drives Snakemake)
 ionwell status campaigns/<name>    table of steps and where the campaign stands
 ionwell place POTENTIAL.cube       one-shot: where would the next guest go?
 ionwell verify campaigns/<name>    check the ledger against the files on disk
+ionwell engines [check NAME]       engine kinds and definitions; a tiny single point through one
 ionwell schema                     JSON Schema of the campaign config
 """
 
@@ -192,6 +193,54 @@ def cmd_schema(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_engines(args: argparse.Namespace) -> int:
+    import shutil as _sh
+
+    from ionwell.engine_check import check_engine, definitions, engine_kinds
+
+    config_dir = Path(args.config_dir) if args.config_dir else Path.cwd()
+    if args.action == "list":
+        print("engine kinds:")
+        for kind, text in engine_kinds().items():
+            print(f"  {kind:<8} {text}")
+        found = definitions(config_dir)
+        print("\nengine definitions (engine: {definition: NAME}):")
+        if not found:
+            print("  none found")
+        for name, path, label, program in found:
+            here = "installed" if _sh.which(program) else "not installed here"
+            print(f"  {name:<18} {label:<18} {program} ({here})  {path}")
+        return 0
+    if not args.name:
+        raise IonwellError("engines check: name an engine kind or definition, e.g. pyscf")
+    report = check_engine(args.name, config_dir, Path(args.keep) if args.keep else None)
+    if args.json:
+        print(report.model_dump_json(indent=2))
+        return 0 if report.ok else (3 if not report.installed else 1)
+    print(f"{report.name} ({report.kind}): {report.message}")
+    if report.energy is not None:
+        print(
+            f"  energy of H2          {report.energy:.6f} eV  (SCF converged: {report.scf_converged})"
+        )
+        lo, hi = report.potential_range
+        shape = "x".join(str(n) for n in report.grid_shape)
+        print(f"  potential map         {shape} points, {lo:.3f} to {hi:.3f} V")
+        if report.charges is not None:
+            q = ", ".join(f"{x:+.3f}" for x in report.charges)
+            print(f"  charges ({report.charge_scheme})  {q} e")
+        for label, v in (("HOMO", report.homo), ("Fermi level", report.fermi_level)):
+            if v is not None:
+                print(f"  {label:<21} {v:.4f} eV")
+        for n in report.notes:
+            print(f"  note: {n}")
+        print(f"  {report.seconds:.1f} s")
+    if report.folder:
+        print(f"  files kept in {report.folder}")
+    if not report.installed:
+        return 3
+    return 0 if report.ok else 1
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="ionwell",
@@ -229,6 +278,16 @@ def build_parser() -> argparse.ArgumentParser:
     rp = sub.add_parser("replay", help="re-derive every decision from the stored maps")
     rp.add_argument("campaign", help="campaign folder")
     rp.set_defaults(func=cmd_replay)
+
+    en = sub.add_parser("engines", help="list engine kinds and definitions; check one")
+    en.add_argument("action", nargs="?", choices=["list", "check"], default="list")
+    en.add_argument("name", nargs="?", help="engine kind or definition name (for check)")
+    en.add_argument(
+        "--config-dir", default=None, help="folder whose engines/ is searched first (default: .)"
+    )
+    en.add_argument("--keep", default=None, help="check: run in this folder and keep its files")
+    en.add_argument("--json", action="store_true", help="check: machine-readable report")
+    en.set_defaults(func=cmd_engines)
 
     sc = sub.add_parser("schema", help="print the JSON Schema of campaign configs")
     sc.add_argument("-o", "--output", default=None, help="write to this file")

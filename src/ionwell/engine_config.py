@@ -10,7 +10,9 @@ and override any of its keys; see :func:`ionwell.engine_definitions.resolve`.
 Text templates (input files, argv items, writer parameters given as strings) use ``${name}``
 placeholders (Python's :class:`string.Template`; ``$$`` is a literal dollar sign). Placeholders:
 ``structure`` (one ``Symbol x y z`` line per atom, Å), ``cell`` (three lines of lattice vectors,
-Å), ``natoms``, ``charge``, ``spin`` (2S), ``multiplicity`` (2S+1), ``step``, ``tasks``,
+Å), ``box`` (``Lx Ly Lz``, Å: the cell's lengths, or for a non-periodic structure its extent plus
+8 Å of vacuum on each side), ``natoms``, ``charge``, ``spin`` (2S), ``multiplicity`` (2S+1),
+``unrestricted`` (``true`` when 2S > 0, else ``false``), ``step``, ``tasks``,
 ``threads``, ``input`` (the input file name), ``restart`` (``restart.value`` when restart files
 were found, else ``restart.fresh``).
 
@@ -315,6 +317,11 @@ class AseEngineConfig(_Model):
     )
     potential: PotentialSpec | None = Field(
         None, description="potential map file written by the calculator, if it offers no method"
+    )
+    potential_sign: Literal["electron", "potential", "auto"] = Field(
+        "electron",
+        description="sign of an array from get_electrostatic_potential(): electron (ASE/GPAW: "
+        "potential energy of an electron, eV), potential (felt by a positive charge, V), auto",
     )
     potential_grid: PotentialGridConfig = PotentialGridConfig()
 

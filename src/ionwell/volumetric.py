@@ -227,9 +227,49 @@ def read_potential(
         grid = orient(grid, reference, sign)
     except GridError as err:
         raise fail.grid_error(err) from None
+    if file_atoms is not None and atoms is not None:
+        grid = _align(grid, file_atoms, atoms, fail)
     logger.debug(
         "read %s potential map %s: shape %s, unit %s, sign %s", fmt, path, grid.shape, unit, sign
     )
+    return grid
+
+
+#: Largest deviation (Å) from one common shift for the file's atoms to count as ours, moved.
+FRAME_TOLERANCE = 2e-3
+
+
+def _align(grid: Grid, file_atoms: Atoms, atoms: Atoms, fail: _Fail) -> Grid:
+    """The grid moved into the frame of ``atoms`` when the file lists the same atoms shifted.
+
+    Programs that centre a molecule in their box (and write the map in that frame) are common;
+    the map is then moved back by that one shift. Atoms listed in another order, or moved
+    differently, are an error: the map would not belong to the structure.
+    """
+    if len(file_atoms) == 0:
+        return grid
+    if len(file_atoms) != len(atoms):
+        raise fail(
+            f"the file lists {len(file_atoms)} atoms, the structure has {len(atoms)}: the map "
+            "does not belong to this step's structure"
+        )
+    if list(file_atoms.numbers) != list(atoms.numbers):
+        raise fail("the file lists other elements, or another order, than the structure")
+    d = np.asarray(atoms.positions) - np.asarray(file_atoms.positions)
+    if atoms.pbc.any():  # a program may wrap atoms into its cell
+        from ase.geometry import find_mic
+
+        d = d[0] + find_mic(d - d[0], atoms.cell, atoms.pbc)[0]
+    shift = d.mean(axis=0)
+    worst = float(np.abs(d - shift).max())
+    if worst > FRAME_TOLERANCE:
+        raise fail(
+            f"the file's atoms are not the structure's atoms moved by one shift (off by up to "
+            f"{worst:.3f} Å): the map does not belong to this step's structure"
+        )
+    if np.abs(shift).max() > 1e-6:
+        logger.info("map %s written in a shifted frame; moved by %s Å", fail.path, shift.round(4))
+        return Grid(origin=grid.origin + shift, axes=grid.axes, values=grid.values, pbc=grid.pbc)
     return grid
 
 

@@ -53,6 +53,9 @@ INPUT_XYZ = "input.extxyz"
 CONTEXT = "context.json"
 STATE = "command.json"
 
+#: Vacuum (Å) on each side of a non-periodic structure in the ``${box}`` placeholder.
+VACUUM = 8.0
+
 #: Fortran double-precision exponents (1.0D-03) are read as ordinary floats.
 _FORTRAN_EXP = re.compile(r"(?<=[0-9.])[dD](?=[-+]?[0-9])")
 
@@ -111,9 +114,15 @@ class CommandEngine:
         """The placeholder values of one compute."""
         n_el = int(sum(atoms.numbers)) - context.charge
         spin = context.spin if context.spin is not None else n_el % 2
+        if atoms.pbc.any():
+            box = atoms.cell.lengths()
+        else:
+            box = np.ptp(atoms.positions, axis=0) + 2 * VACUUM
         return {
             "structure": structure_block(atoms),
             "cell": _cell_block(atoms),
+            "box": " ".join(f"{x:.6f}" for x in box),
+            "unrestricted": "true" if spin else "false",
             "natoms": len(atoms),
             "charge": context.charge,
             "spin": spin,
