@@ -14,6 +14,14 @@ def get_engine(campaign) -> Engine:
         from ionwell.engines.pyscf_engine import PyscfEngine
 
         return PyscfEngine(campaign.engine, campaign.relax)
+    if kind == "tblite":
+        from ionwell.engines.tblite_engine import TbliteEngine
+
+        return TbliteEngine(campaign.engine, campaign.relax)
+    if kind == "ase":
+        from ionwell.engines.ase_engine import AseEngine
+
+        return AseEngine(campaign.engine, campaign.relax)
     if kind == "command":
         from ionwell.engines.command_engine import CommandEngine
 

@@ -39,7 +39,6 @@ from __future__ import annotations
 import json
 import logging
 import math
-import os
 import time
 import warnings
 from pathlib import Path
@@ -50,14 +49,28 @@ from ase import Atoms
 from ase.calculators.calculator import Calculator, all_changes
 from ase.constraints import FixAtoms
 from ase.units import Bohr, Hartree
-from pydantic import ValidationError
 
 from ionwell.config import PyscfEngineConfig, RelaxConfig
 from ionwell.engines.base import ComputeContext, StepResult
-from ionwell.errors import ConfigError, EngineOutputError, GridError
-from ionwell.grid import Grid, load_npz, save_npz
+from ionwell.engines.results import (
+    CONTEXT,
+    INPUT,
+    OUTPUT,
+    POTENTIAL,
+    collect_outputs,
+    read_inputs,
+    write_inputs,
+    write_output,
+)
+from ionwell.engines.results import atomic_write as _atomic_write
+from ionwell.errors import ConfigError
+from ionwell.grid import Grid, save_npz
 
 __all__ = [
+    "CONTEXT",
+    "INPUT",
+    "OUTPUT",
+    "POTENTIAL",
     "PyscfCalculator",
     "PyscfEngine",
     "build_mol",
@@ -71,10 +84,6 @@ __all__ = [
 
 log = logging.getLogger("ionwell.engines.pyscf")
 
-INPUT = "input.extxyz"
-CONTEXT = "context.json"
-OUTPUT = "output.json"
-POTENTIAL = "potential.npz"
 CHECKPOINT = "pyscf.chk"
 TRAJECTORY = "relax.traj"
 RELAX_LOG = "relax.log"
@@ -726,15 +735,6 @@ def _checked_mol(atoms: Atoms, cfg: PyscfEngineConfig, context: ComputeContext, 
         ) from None
 
 
-def _atomic_write(path: Path, text: str) -> None:
-    tmp = path.with_name(f".{path.name}.tmp")
-    with tmp.open("w") as f:
-        f.write(text)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
-
-
 class PyscfEngine:
     """In-process Kohn–Sham DFT with PySCF (see the module docstring for files and methods)."""
 
@@ -748,17 +748,9 @@ class PyscfEngine:
 
     def prepare(self, atoms: Atoms, workdir: Path, context: ComputeContext) -> None:
         """Write ``input.extxyz`` and ``context.json``; remove outputs of an earlier attempt."""
-        from ase.io import write
-
-        workdir = Path(workdir)
-        workdir.mkdir(parents=True, exist_ok=True)
-        for name in (OUTPUT, POTENTIAL, TIMINGS):
-            (workdir / name).unlink(missing_ok=True)
         if any(atoms.pbc):
             log.warning("the pyscf engine computes a finite cluster; periodicity is ignored")
-        a = Atoms(atoms.get_chemical_symbols(), positions=atoms.positions)
-        write(workdir / INPUT, a, format="extxyz")
-        _atomic_write(workdir / CONTEXT, context.model_dump_json(indent=2) + "\n")
+        write_inputs(atoms, workdir, context, stale=(TIMINGS,))
 
     def argv(self, workdir: Path, launcher: object | None = None) -> list[str] | None:
         """None: this engine runs in-process through :meth:`run`."""
@@ -766,19 +758,11 @@ class PyscfEngine:
 
     def run(self, workdir: Path) -> None:
         """Compute the step described by ``workdir``'s inputs and write the outputs."""
-        from ase.io import read
-
         t_start = time.perf_counter()
         workdir = Path(workdir)
         pyscf, _, _, _, _, lib = _pyscf()
         cfg, rcfg = self.cfg, self.relax
-        try:
-            atoms = read(workdir / INPUT, format="extxyz")
-            context = ComputeContext.model_validate_json((workdir / CONTEXT).read_text())
-        except (OSError, ValueError) as err:
-            raise EngineOutputError(
-                f"{workdir}: cannot read the engine inputs {INPUT} and {CONTEXT} ({err})"
-            ) from None
+        atoms, context = read_inputs(workdir)
         if cfg.threads:
             lib.num_threads(cfg.threads)
 
@@ -882,7 +866,7 @@ class PyscfEngine:
             **{f"detail_{k}": v for k, v in timings.items()},
         }
         _atomic_write(workdir / TIMINGS, json.dumps(diag, indent=2) + "\n")
-        _atomic_write(workdir / OUTPUT, result.model_dump_json(indent=2) + "\n")
+        write_output(workdir, result)
         log.info(
             "pyscf done in %.1f s: E = %.6f eV, SCF %s, %d SCF runs (%.1f s), gradients %.1f s, "
             "potential %.1f s",
@@ -897,47 +881,7 @@ class PyscfEngine:
 
     def collect(self, workdir: Path) -> tuple[StepResult, Grid]:
         """Read ``output.json`` and ``potential.npz``; EngineOutputError names file + reason."""
-        workdir = Path(workdir)
-        out = workdir / OUTPUT
-        try:
-            text = out.read_text()
-        except FileNotFoundError:
-            raise EngineOutputError(
-                f"{out}: missing (expected the result of the PySCF run; did run() finish?)"
-            ) from None
-        except OSError as err:
-            raise EngineOutputError(f"{out}: cannot read ({err.strerror or err})") from None
-        try:
-            data = json.loads(text)
-        except json.JSONDecodeError as err:
-            raise EngineOutputError(
-                f"{out}: not valid JSON ({err.msg} at line {err.lineno}); expected a StepResult"
-            ) from None
-        if not isinstance(data, dict):
-            raise EngineOutputError(f"{out}: expected a JSON object with StepResult fields")
-        try:
-            result = StepResult.model_validate(data)
-        except ValidationError as err:
-            fields = "; ".join(
-                f"{'.'.join(str(p) for p in e['loc']) or '(top)'}: {e['msg']}" for e in err.errors()
-            )
-            raise EngineOutputError(f"{out}: unusable StepResult ({fields})") from None
-        if not math.isfinite(result.energy):
-            raise EngineOutputError(f"{out}: energy is {result.energy}; expected a finite number")
-        if result.forces is not None and not np.isfinite(np.asarray(result.forces)).all():
-            raise EngineOutputError(f"{out}: forces hold non-finite values")
-        if len(result.positions) != len(result.symbols):
-            raise EngineOutputError(
-                f"{out}: {len(result.positions)} positions for {len(result.symbols)} symbols"
-            )
-        pot = workdir / (result.potential_file or POTENTIAL)
-        if not pot.is_file():
-            raise EngineOutputError(f"{pot}: missing (expected the potential map of this step)")
-        try:
-            grid = load_npz(pot)
-        except GridError as err:
-            raise EngineOutputError(str(err)) from None
-        return result, grid
+        return collect_outputs(workdir, "PySCF")
 
     # -- relaxation -----------------------------------------------------------------------
 

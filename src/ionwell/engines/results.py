@@ -1,0 +1,156 @@
+"""Files every in-process engine shares: inputs, ``output.json`` and ``potential.npz``.
+
+=================  =====================================================================
+``input.extxyz``   structure entering the compute (Å)
+``context.json``   the :class:`~ionwell.engines.base.ComputeContext`
+``output.json``    every :class:`~ionwell.engines.base.StepResult` field, written last
+``potential.npz``  potential map, volts, float32 (:func:`ionwell.grid.save_npz`)
+=================  =====================================================================
+
+Writes are atomic (temporary name, fsync, rename); :func:`collect_outputs` raises
+:class:`~ionwell.errors.EngineOutputError` naming the file and the reason.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+from collections.abc import Iterable
+from pathlib import Path
+
+import numpy as np
+from ase import Atoms
+from pydantic import ValidationError
+
+from ionwell.engines.base import ComputeContext, StepResult
+from ionwell.errors import EngineOutputError, GridError
+from ionwell.grid import Grid, load_npz
+
+__all__ = [
+    "CONTEXT",
+    "INPUT",
+    "OUTPUT",
+    "POTENTIAL",
+    "atomic_write",
+    "collect_outputs",
+    "read_inputs",
+    "write_inputs",
+    "write_output",
+]
+
+INPUT = "input.extxyz"
+CONTEXT = "context.json"
+OUTPUT = "output.json"
+POTENTIAL = "potential.npz"
+
+
+def atomic_write(path: Path, text: str) -> None:
+    """Write ``text`` to ``path`` under a temporary name, fsync, then rename into place."""
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.tmp")
+    with tmp.open("w") as f:
+        f.write(text)
+        f.flush()
+        os.fsync(f.fileno())
+    os.replace(tmp, path)
+
+
+def write_inputs(
+    atoms: Atoms,
+    workdir: Path,
+    context: ComputeContext,
+    stale: Iterable[str] = (),
+    keep_cell: bool = False,
+) -> None:
+    """Write ``input.extxyz`` and ``context.json`` into ``workdir`` (created if needed).
+
+    ``output.json``, ``potential.npz`` and the names in ``stale`` (outputs of an earlier attempt)
+    are removed first. Without ``keep_cell`` only symbols and positions are written (a finite
+    cluster); with it the cell and periodicity are kept too.
+    """
+    from ase.io import write
+
+    workdir = Path(workdir)
+    workdir.mkdir(parents=True, exist_ok=True)
+    for name in (OUTPUT, POTENTIAL, *stale):
+        (workdir / name).unlink(missing_ok=True)
+    if keep_cell:
+        a = Atoms(
+            atoms.get_chemical_symbols(), positions=atoms.positions, cell=atoms.cell, pbc=atoms.pbc
+        )
+    else:
+        a = Atoms(atoms.get_chemical_symbols(), positions=atoms.positions)
+    write(workdir / INPUT, a, format="extxyz")
+    atomic_write(workdir / CONTEXT, context.model_dump_json(indent=2) + "\n")
+
+
+def read_inputs(workdir: Path) -> tuple[Atoms, ComputeContext]:
+    """Read ``input.extxyz`` and ``context.json``; EngineOutputError when either is unusable."""
+    from ase.io import read
+
+    workdir = Path(workdir)
+    try:
+        atoms = read(workdir / INPUT, format="extxyz")
+        context = ComputeContext.model_validate_json((workdir / CONTEXT).read_text())
+    except (OSError, ValueError) as err:
+        raise EngineOutputError(
+            f"{workdir}: cannot read the engine inputs {INPUT} and {CONTEXT} ({err})"
+        ) from None
+    return atoms, context
+
+
+def write_output(workdir: Path, result: StepResult) -> None:
+    """Write ``result`` as ``output.json`` atomically (the last file of a run)."""
+    atomic_write(Path(workdir) / OUTPUT, result.model_dump_json(indent=2) + "\n")
+
+
+def collect_outputs(workdir: Path, code: str = "engine") -> tuple[StepResult, Grid]:
+    """Read ``output.json`` and the potential map it names (default ``potential.npz``).
+
+    ``code`` names the program in the message about a missing ``output.json`` (e.g. 'PySCF').
+    Raises EngineOutputError naming the file and the reason: missing, unreadable, not JSON, not
+    a StepResult, a non-finite energy or forces, positions and symbols of different lengths, a
+    missing or unreadable potential map.
+    """
+    workdir = Path(workdir)
+    out = workdir / OUTPUT
+    try:
+        text = out.read_text()
+    except FileNotFoundError:
+        raise EngineOutputError(
+            f"{out}: missing (expected the result of the {code} run; did run() finish?)"
+        ) from None
+    except OSError as err:
+        raise EngineOutputError(f"{out}: cannot read ({err.strerror or err})") from None
+    try:
+        data = json.loads(text)
+    except json.JSONDecodeError as err:
+        raise EngineOutputError(
+            f"{out}: not valid JSON ({err.msg} at line {err.lineno}); expected a StepResult"
+        ) from None
+    if not isinstance(data, dict):
+        raise EngineOutputError(f"{out}: expected a JSON object with StepResult fields")
+    try:
+        result = StepResult.model_validate(data)
+    except ValidationError as err:
+        fields = "; ".join(
+            f"{'.'.join(str(p) for p in e['loc']) or '(top)'}: {e['msg']}" for e in err.errors()
+        )
+        raise EngineOutputError(f"{out}: unusable StepResult ({fields})") from None
+    if not math.isfinite(result.energy):
+        raise EngineOutputError(f"{out}: energy is {result.energy}; expected a finite number")
+    if result.forces is not None and not np.isfinite(np.asarray(result.forces)).all():
+        raise EngineOutputError(f"{out}: forces hold non-finite values")
+    if len(result.positions) != len(result.symbols):
+        raise EngineOutputError(
+            f"{out}: {len(result.positions)} positions for {len(result.symbols)} symbols"
+        )
+    pot = workdir / (result.potential_file or POTENTIAL)
+    if not pot.is_file():
+        raise EngineOutputError(f"{pot}: missing (expected the potential map of this step)")
+    try:
+        grid = load_npz(pot)
+    except GridError as err:
+        raise EngineOutputError(str(err)) from None
+    return result, grid
