@@ -56,7 +56,10 @@ def _campaign(
 ) -> tuple[CampaignPaths, subprocess.CompletedProcess]:
     data = {"name": name, **BASE}
     for key, value in sections.items():
-        data[key] = {**data.get(key, {}), **value}
+        if key == "engine" and value.get("kind", "pyscf") != "pyscf":
+            data[key] = {"potential_grid": ENGINE["potential_grid"], **value}  # another kind
+        else:
+            data[key] = {**data.get(key, {}), **value}
     cfg = tmp / f"{name}.yaml"
     cfg.write_text(yaml.safe_dump(data))
     proc = subprocess.run(
@@ -229,3 +232,37 @@ def test_screened_rule_uses_its_own_engine(tmp_path):
         assert abs(e - energies[i]) < 1e-4, (i, e, energies[i])
     # the step itself ran with the campaign's engine: a different basis gives a different energy
     assert abs(r1.energy - min(energies)) > 1.0
+
+
+def test_screened_rule_with_tight_binding_and_a_tblite_campaign(tmp_path):
+    """Candidates screened with GFN2-xTB while the campaign runs DFT; each screened energy is
+    checked against tblite's own ASE calculator (reference library: tblite)."""
+    from tblite.ase import TBLite
+
+    paths, proc = _campaign(
+        tmp_path,
+        "xtb-screened",
+        placement={"rule": "screened", "screen": {"top": 3, "engine": {"kind": "tblite"}}},
+        stop={"guests": 1},
+    )
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    r0, _ = read_ledger(paths.ledger)
+    d = r0.decision
+    energies = d.energies[:3]
+    best = min(range(3), key=lambda i: (energies[i], i))
+    np.testing.assert_allclose(d.chosen[0].position, d.candidates[best].position)
+    host = read(paths.step(0) / "relaxed.extxyz")
+    for i in (0, 2):
+        trial = host.copy()
+        trial.calc = None
+        trial += type(host)("Li", positions=[d.candidates[i].position])
+        trial.calc = TBLite(method="GFN2-xTB", charge=1, verbosity=0)
+        assert abs(trial.get_potential_energy() - energies[i]) < 1e-4, i
+
+    # a whole campaign on the tight-binding engine: its status says the map is approximate
+    paths2, proc2 = _campaign(tmp_path, "xtb", engine={"kind": "tblite"}, stop={"guests": 2})
+    assert proc2.returncode == 0, proc2.stderr[-3000:]
+    assert [r.guests for r in read_ledger(paths2.ledger)] == [0, 1, 2]
+    assert all(r.engine == "tblite" for r in read_ledger(paths2.ledger))
+    st = subprocess.run([*IONWELL, "status", str(paths2.root)], capture_output=True, text=True)
+    assert "site potentials are approximate" in st.stdout

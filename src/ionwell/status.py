@@ -35,6 +35,7 @@ class CampaignStatus(BaseModel):
     rows: list[StepRow]
     state: str
     detail: str | None = None
+    potential_model: str = "exact"
 
 
 def campaign_status(root: str | Path) -> CampaignStatus:
@@ -80,7 +81,15 @@ def campaign_status(root: str | Path) -> CampaignStatus:
             state = f"paused after step {records[-1].step} (resume with: ionwell run)"
         else:
             state = "not started"
+    model = "exact"
+    if records:
+        try:
+            res = json.loads((paths.step(records[-1].step) / "result.json").read_text())
+            model = str(res.get("potential_model", "exact"))
+        except (OSError, ValueError):
+            pass
     return CampaignStatus(
+        potential_model=model,
         name=campaign.name,
         folder=str(paths.root),
         guest=campaign.guest.element,
@@ -110,6 +119,8 @@ def format_status(st: CampaignStatus) -> str:
     if not st.rows:
         lines.append("  (no finished step yet)")
     lines.append("")
+    if st.potential_model != "exact":
+        lines.append(f"site potentials are approximate: the map is {st.potential_model}")
     lines.append(f"state: {st.state}")
     if st.detail:
         lines.append(f"       {st.detail}")
