@@ -19,7 +19,6 @@ from ionwell.engines.pyscf_engine import (
     INPUT,
     OUTPUT,
     POTENTIAL,
-    TRAJECTORY,
     PyscfEngine,
     _KohnSham,
     build_mol,
@@ -28,6 +27,7 @@ from ionwell.engines.pyscf_engine import (
     nuclear_potential,
     potential_map,
 )
+from ionwell.engines.relax import TRAJECTORY
 from ionwell.errors import EngineOutputError
 from ionwell.grid import Grid, save_npz
 

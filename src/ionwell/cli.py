@@ -11,7 +11,6 @@ ionwell schema                     JSON Schema of the campaign config
 from __future__ import annotations
 
 import argparse
-import ctypes
 import logging
 import os
 import signal
@@ -22,17 +21,9 @@ from pathlib import Path
 import ionwell
 from ionwell import cli_place
 from ionwell.errors import IonwellError
+from ionwell.launcher import die_with_parent
 
 log = logging.getLogger("ionwell.cli")
-
-
-def _die_with_parent() -> None:  # pragma: no cover - runs in the child before exec
-    """Make the Snakemake child receive SIGKILL when the controller dies (Linux)."""
-    try:
-        libc = ctypes.CDLL("libc.so.6", use_errno=True)
-        libc.prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG
-    except OSError:
-        pass
 
 
 def _profile_dir(name: str) -> Path:
@@ -78,7 +69,7 @@ def _run_snakemake(argv: list[str], lock) -> int:
     On SIGINT/SIGTERM the whole group (Snakemake and the step jobs it spawned) is ended at once;
     after a SIGKILL of the controller, the next controller ends what is left of the group.
     """
-    child = subprocess.Popen(argv, start_new_session=True, preexec_fn=_die_with_parent)
+    child = subprocess.Popen(argv, start_new_session=True, preexec_fn=die_with_parent)
     lock.record_jobs_group(child.pid)
 
     def _stop(signum, _frame):
@@ -119,7 +110,7 @@ def cmd_run(args: argparse.Namespace) -> int:
         if stale:
             print(f"ionwell: an earlier controller of '{campaign.name}' is gone; resuming")
             subprocess.run(
-                [*argv, "--unlock"], check=False, capture_output=True, preexec_fn=_die_with_parent
+                [*argv, "--unlock"], check=False, capture_output=True, preexec_fn=die_with_parent
             )
         print(f"ionwell: running campaign '{campaign.name}' in {paths.root}", flush=True)
         returncode = _run_snakemake(argv, lock)

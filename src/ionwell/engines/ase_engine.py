@@ -56,15 +56,13 @@ from typing import Any
 import numpy as np
 from ase import Atoms
 
-from ionwell.config import RelaxConfig
-from ionwell.engine_config import AseEngineConfig
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.engines.relax import relax_atoms
 from ionwell.engines.results import (
     CONTEXT,
     POTENTIAL,
+    InProcessEngine,
     atomic_write,
-    collect_outputs,
     read_inputs,
     write_inputs,
     write_output,
@@ -161,16 +159,14 @@ def grid_from_calculator(value: Any, atoms: Atoms, sign: str) -> Grid:
         raise EngineOutputError(f"{what}: {err}") from None
 
 
-class AseEngine:
+class AseEngine(InProcessEngine):
     """In-process engine on any ASE calculator (see the module docstring)."""
 
     name = "ase"
 
-    def __init__(self, engine_config: AseEngineConfig, relax: RelaxConfig) -> None:
-        self.cfg = engine_config
-        self.relax = relax
-
-    # -- contract -------------------------------------------------------------------------
+    @property
+    def code(self) -> str:  # type: ignore[override]
+        return f"ASE calculator {self.cfg.calculator}"
 
     def prepare(self, atoms: Atoms, workdir: Path, context: ComputeContext) -> None:
         """Write ``input.extxyz`` and ``context.json``; remove outputs of an earlier attempt
@@ -180,10 +176,6 @@ class AseEngine:
         if self.cfg.potential is not None and workdir.is_dir():
             stale += [p.name for p in workdir.glob(self.cfg.potential.file) if p.is_file()]
         write_inputs(atoms, workdir, context, stale=stale, keep_cell=True)
-
-    def argv(self, workdir: Path, launcher: object | None = None) -> list[str] | None:
-        """None: this engine runs in-process through :meth:`run`."""
-        return None
 
     def make_calculator(self, context: ComputeContext, workdir: Path):
         """Build the calculator: ``engine.parameters`` (+ the charge), in ``workdir``."""
@@ -285,10 +277,6 @@ class AseEngine:
             result.energy,
             model,
         )
-
-    def collect(self, workdir: Path) -> tuple[StepResult, Grid]:
-        """Read ``output.json`` and ``potential.npz``; EngineOutputError names file + reason."""
-        return collect_outputs(workdir, f"ASE calculator {self.cfg.calculator}")
 
     # -- pieces ---------------------------------------------------------------------------
 

@@ -47,19 +47,18 @@ from typing import Any
 import numpy as np
 from ase import Atoms
 from ase.calculators.calculator import Calculator, all_changes
-from ase.constraints import FixAtoms
 from ase.units import Bohr, Hartree
 
-from ionwell.config import PyscfEngineConfig, RelaxConfig
+from ionwell.config import PyscfEngineConfig
 from ionwell.engines.base import ComputeContext, StepResult
+from ionwell.engines.relax import relax_atoms
 from ionwell.engines.results import (
     CONTEXT,
     INPUT,
     OUTPUT,
     POTENTIAL,
-    collect_outputs,
+    InProcessEngine,
     read_inputs,
-    write_inputs,
     write_output,
 )
 from ionwell.engines.results import atomic_write as _atomic_write
@@ -85,8 +84,6 @@ __all__ = [
 log = logging.getLogger("ionwell.engines.pyscf")
 
 CHECKPOINT = "pyscf.chk"
-TRAJECTORY = "relax.traj"
-RELAX_LOG = "relax.log"
 TIMINGS = "timings.json"
 
 #: Auxiliary basis for the ``fitted`` potential (H–Rn). Measured on water and benzene: about
@@ -97,8 +94,6 @@ SHORTLIST_FRACTION = 0.02
 #: Nuclear potential is evaluated no closer than this to a nucleus (bohr), so a grid point that
 #: falls on a nucleus holds a large finite maximum instead of infinity.
 _NUCLEUS_FLOOR = 1e-2
-#: Initial Hessian (eV/Å²) of BFGS/LBFGS when some atoms are fixed (guest-only relaxation).
-GUEST_HESSIAN = 10.0
 #: Memory budget for one block of integrals over grid points (bytes).
 _BLOCK_BYTES = 256e6
 
@@ -735,26 +730,11 @@ def _checked_mol(atoms: Atoms, cfg: PyscfEngineConfig, context: ComputeContext, 
         ) from None
 
 
-class PyscfEngine:
+class PyscfEngine(InProcessEngine):
     """In-process Kohn–Sham DFT with PySCF (see the module docstring for files and methods)."""
 
     name = "pyscf"
-
-    def __init__(self, engine_config: PyscfEngineConfig, relax: RelaxConfig) -> None:
-        self.cfg = engine_config
-        self.relax = relax
-
-    # -- contract -------------------------------------------------------------------------
-
-    def prepare(self, atoms: Atoms, workdir: Path, context: ComputeContext) -> None:
-        """Write ``input.extxyz`` and ``context.json``; remove outputs of an earlier attempt."""
-        if any(atoms.pbc):
-            log.warning("the pyscf engine computes a finite cluster; periodicity is ignored")
-        write_inputs(atoms, workdir, context, stale=(TIMINGS,))
-
-    def argv(self, workdir: Path, launcher: object | None = None) -> list[str] | None:
-        """None: this engine runs in-process through :meth:`run`."""
-        return None
+    code = "PySCF"
 
     def run(self, workdir: Path) -> None:
         """Compute the step described by ``workdir``'s inputs and write the outputs."""
@@ -879,75 +859,17 @@ class PyscfEngine:
             t_pot,
         )
 
-    def collect(self, workdir: Path) -> tuple[StepResult, Grid]:
-        """Read ``output.json`` and ``potential.npz``; EngineOutputError names file + reason."""
-        return collect_outputs(workdir, "PySCF")
-
     # -- relaxation -----------------------------------------------------------------------
 
     def _relax(
         self, atoms: Atoms, ks: _KohnSham, movable: list[int], workdir: Path
     ) -> tuple[bool, int, np.ndarray]:
-        """Relax the ``movable`` atoms (others fixed); returns (converged, steps, forces eV/Å)."""
-        from ase import optimize
+        """Relax the ``movable`` atoms (others fixed); returns (converged, steps, forces eV/Å).
 
-        rcfg = self.relax
-        a = Atoms(atoms.get_chemical_symbols(), positions=atoms.positions)
-        fixed = [i for i in range(len(a)) if i not in set(movable)]
-        if fixed:
-            a.set_constraint(FixAtoms(indices=fixed))
-        calc = PyscfCalculator(ks)
-        a.calc = calc
-        opt_cls = {"BFGS": optimize.BFGS, "FIRE": optimize.FIRE, "LBFGS": optimize.LBFGS}[
-            rcfg.optimizer
-        ]
-        log.info(
-            "relaxing %d of %d atoms with %s to fmax %.3g eV/Å (at most %d steps)",
-            len(movable),
-            len(a),
-            rcfg.optimizer,
-            rcfg.fmax,
-            rcfg.steps,
+        Each geometry's SCF starts from the previous one's orbitals (:class:`PyscfCalculator`);
+        the last evaluation is at the final geometry, so ``ks`` then describes it.
+        """
+        converged, steps, _, forces = relax_atoms(
+            atoms, PyscfCalculator(ks), movable, self.relax, workdir
         )
-        kwargs: dict[str, Any] = {}
-        if fixed and rcfg.optimizer in ("BFGS", "LBFGS"):
-            # guests among fixed atoms sit in soft, non-bonded wells: start from a softer
-            # Hessian than ASE's covalent default (70 eV/Å²); Li⁺ over a fixed benzene took
-            # 8 BFGS steps instead of 12 to 0.05 eV/Å (LDA/6-31G, measured)
-            kwargs["alpha"] = GUEST_HESSIAN
-        with opt_cls(
-            a,
-            trajectory=str(workdir / TRAJECTORY),
-            logfile=str(workdir / RELAX_LOG),
-            maxstep=rcfg.max_step,
-            **kwargs,
-        ) as opt:
-
-            def report() -> None:
-                f = a.get_forces()
-                fmax = float(np.sqrt((f**2).sum(axis=1)).max())
-                log.info(
-                    "relax step %d: E = %.6f eV, fmax = %.4f eV/Å (SCF %d iterations)",
-                    opt.nsteps,
-                    a.get_potential_energy(),
-                    fmax,
-                    ks.iterations,
-                )
-
-            opt.attach(report, interval=1)
-            converged = bool(opt.run(fmax=rcfg.fmax, steps=rcfg.steps))
-            steps = int(opt.nsteps)
-        # the last evaluation is at the final geometry; make sure of it
-        if ks.mf is None or not np.allclose(
-            ks.mf.mol.atom_coords(unit="Angstrom"), a.positions, atol=1e-10
-        ):
-            ks.scf(a.positions)
-            forces = -ks.gradient() * (Hartree / Bohr)
-        else:
-            forces = calc.results["forces"]
-        log.info(
-            "relaxation %s after %d steps",
-            "converged" if converged else "NOT converged",
-            steps,
-        )
-        return converged, steps, np.asarray(forces)
+        return converged, steps, forces

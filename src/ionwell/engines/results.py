@@ -14,6 +14,7 @@ Writes are atomic (temporary name, fsync, rename); :func:`collect_outputs` raise
 from __future__ import annotations
 
 import json
+import logging
 import math
 import os
 from collections.abc import Iterable
@@ -26,6 +27,8 @@ from pydantic import ValidationError
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.errors import EngineOutputError, GridError
 from ionwell.grid import Grid, load_npz
+
+log = logging.getLogger("ionwell.engines")
 
 __all__ = [
     "CONTEXT",
@@ -154,3 +157,34 @@ def collect_outputs(workdir: Path, code: str = "engine") -> tuple[StepResult, Gr
     except GridError as err:
         raise EngineOutputError(str(err)) from None
     return result, grid
+
+
+class InProcessEngine:
+    """What the in-process engines share: construction, ``argv`` (None: run in-process),
+    ``prepare`` for a finite cluster, and ``collect`` of ``output.json`` + the map.
+
+    Subclasses set :attr:`name` and :attr:`code` and implement ``run``.
+    """
+
+    name = "engine"
+    code = "engine"  # the program's name in messages about its outputs
+
+    def __init__(self, engine_config, relax) -> None:
+        self.cfg = engine_config
+        self.relax = relax
+
+    def prepare(self, atoms: Atoms, workdir: Path, context: ComputeContext) -> None:
+        """Write ``input.extxyz`` and ``context.json``; remove outputs of an earlier attempt."""
+        if any(atoms.pbc):
+            log.warning(
+                "the %s engine computes a finite cluster; periodicity is ignored", self.name
+            )
+        write_inputs(atoms, workdir, context, stale=("timings.json",))
+
+    def argv(self, workdir: Path, launcher: object | None = None) -> list[str] | None:
+        """None: this engine runs in-process through ``run``."""
+        return None
+
+    def collect(self, workdir: Path) -> tuple[StepResult, Grid]:
+        """Read ``output.json`` and ``potential.npz``; EngineOutputError names file + reason."""
+        return collect_outputs(workdir, self.code)

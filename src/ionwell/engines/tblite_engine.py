@@ -66,7 +66,6 @@ from ase.calculators.calculator import Calculator, all_changes
 from ase.data import covalent_radii
 from ase.units import Bohr, Hartree, kB
 
-from ionwell.config import RelaxConfig
 from ionwell.engine_config import TbliteEngineConfig
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.engines.pyscf_engine import grid_box
@@ -74,10 +73,10 @@ from ionwell.engines.relax import relax_atoms
 from ionwell.engines.results import (
     CONTEXT,
     POTENTIAL,
+    InProcessEngine,
     atomic_write,
     collect_outputs,
     read_inputs,
-    write_inputs,
     write_output,
 )
 from ionwell.errors import ConfigError, EngineOutputError
@@ -472,26 +471,11 @@ def _charge_and_spin(atoms: Atoms, context: ComputeContext, workdir: Path) -> tu
     return int(context.charge), int(spin)
 
 
-class TbliteEngine:
+class TbliteEngine(InProcessEngine):
     """In-process GFN-xTB with tblite (see the module docstring for files and methods)."""
 
     name = "tblite"
-
-    def __init__(self, engine_config: TbliteEngineConfig, relax: RelaxConfig) -> None:
-        self.cfg = engine_config
-        self.relax = relax
-
-    # -- contract -------------------------------------------------------------------------
-
-    def prepare(self, atoms: Atoms, workdir: Path, context: ComputeContext) -> None:
-        """Write ``input.extxyz`` and ``context.json``; remove outputs of an earlier attempt."""
-        if any(atoms.pbc):
-            log.warning("the tblite engine computes a finite cluster; periodicity is ignored")
-        write_inputs(atoms, workdir, context, stale=(TIMINGS,))
-
-    def argv(self, workdir: Path, launcher: object | None = None) -> list[str] | None:
-        """None: this engine runs in-process through :meth:`run`."""
-        return None
+    code = "tblite"
 
     def run(self, workdir: Path) -> None:
         """Compute the step described by ``workdir``'s inputs and write the outputs."""
