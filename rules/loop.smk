@@ -18,6 +18,11 @@ checkpoint step:
         _step_input,
     output:
         f"{CDIR}/steps/{{step}}/status.json",
+    threads: CAMPAIGN.resources.compute.threads
+    resources:
+        runtime=lambda wildcards, attempt: walltime_minutes(CAMPAIGN, attempt),
+        walltime_hms=lambda wildcards, attempt: hms(walltime_minutes(CAMPAIGN, attempt)),
+        **step_resources(CAMPAIGN),
     run:
         loop.run_step(CDIR, int(wildcards.step))
 
@@ -33,6 +38,7 @@ def _finished_steps(wildcards):
 
 
 rule summary:
+    localrule: CAMPAIGN.resources.light == "local"
     input:
         _finished_steps,
     output:

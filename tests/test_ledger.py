@@ -59,7 +59,7 @@ def test_chain_and_hashes(campaign):
     assert recs[1].parent == recs[0].hash and recs[2].parent == recs[1].hash
     # each hash is sha256 over the canonical JSON without the hash field (recomputed here
     # independently of compute_hash with hashlib)
-    body = recs[1].model_dump(mode="json", exclude={"hash"})
+    body = recs[1].model_dump(mode="json", exclude={"hash", "job_id"})  # job_id: unset here
     canon = json.dumps(body, sort_keys=True, separators=(",", ":")).encode()
     assert recs[1].hash == hashlib.sha256(canon).hexdigest()
     assert "status.json" not in recs[0].files

@@ -43,7 +43,10 @@ __all__ = [
     "PlacementConfig",
     "PotentialGridConfig",
     "PyscfEngineConfig",
+    "ComputeResources",
     "RemedyConfig",
+    "RemoteConfig",
+    "ResourcesConfig",
     "RelaxConfig",
     "StopConfig",
     "campaign_schema",
@@ -282,6 +285,51 @@ class RemedyConfig(_Model):
     max_rejects: int = Field(3, ge=0, description="times a step's new sites are rejected at most")
 
 
+class ComputeResources(_Model):
+    """What one compute step asks of a scheduler (SLURM, PBS) or of the local machine."""
+
+    tasks: int = Field(1, ge=1, le=100000, description="MPI ranks (tasks) of the step job")
+    threads: int = Field(1, ge=1, le=1024, description="cores per task")
+    memory: int = Field(2000, ge=1, description="memory of the step job, MB")
+    walltime: int = Field(60, ge=1, le=525600, description="time limit of the first attempt, min")
+    walltime_factor: float = Field(
+        2.0, ge=1.0, le=10.0, description="each retry gets this factor more time than the last"
+    )
+    partition: str | None = Field(None, description="partition (SLURM) or queue (PBS)")
+    account: str | None = Field(None, description="account to charge")
+    extra: str | None = Field(None, description="further scheduler flags, e.g. '--qos=long'")
+
+
+class ResourcesConfig(_Model):
+    """Scheduler resources: the compute step is the big job; the summary runs where the
+    controller runs (``light: local``) or as a small job (``light: job``)."""
+
+    compute: ComputeResources = ComputeResources()
+    light: Literal["local", "job"] = "local"
+
+
+class RemoteConfig(_Model):
+    """Remote mode: the controller stays here; compute steps go to a cluster over SSH.
+
+    Host keys are checked against ``known_hosts`` and an unknown key is refused. ``setup``
+    lines run in the job script before ionwell (e.g. ``module load ...``, activating an
+    environment); ``python`` is the cluster's Python with ionwell installed.
+    """
+
+    host: str = Field(min_length=1, description="cluster login host")
+    port: int = Field(22, ge=1, le=65535)
+    user: str = Field(min_length=1)
+    key_file: str = Field(description="private key file (never copied or logged)")
+    known_hosts: str = Field(description="OpenSSH known_hosts file holding the host's key")
+    workdir: str = Field(description="folder on the cluster under which steps are staged")
+    scheduler: Literal["slurm", "pbs"] = "slurm"
+    python: str = Field("python3", description="Python on the cluster, with ionwell installed")
+    setup: list[str] = Field(default_factory=list, description="job-script lines before ionwell")
+    poll: float = Field(15.0, gt=0.0, le=3600.0, description="seconds between job state queries")
+    connect_attempts: int = Field(5, ge=1, le=100, description="tries per connection, backoff")
+    timeout: float = Field(30.0, gt=0.0, description="seconds for connecting and each command")
+
+
 class StopConfig(_Model):
     """Stop rule: the campaign ends at the first condition met."""
 
@@ -314,6 +362,8 @@ class Campaign(_Model):
     checks: ChecksConfig = ChecksConfig()
     remedies: RemedyConfig = RemedyConfig()
     stop: StopConfig = StopConfig()
+    resources: ResourcesConfig = ResourcesConfig()
+    remote: RemoteConfig | None = None
 
 
 # ---------------------------------------------------------------------------------------------

@@ -36,6 +36,9 @@ class Rejection(BaseModel):
     reason: str
 
 
+_LATE_FIELDS = ("job_id",)
+
+
 class LedgerRecord(BaseModel):
     """What the ledger keeps of one finished step."""
 
@@ -61,10 +64,14 @@ class LedgerRecord(BaseModel):
     started: str
     finished: str
     wall_time: float = Field(description="seconds")
+    job_id: str | None = Field(None, description="scheduler job that computed the step")
     hash: str = ""
 
     def compute_hash(self) -> str:
-        body = self.model_dump(mode="json", exclude={"hash"})
+        # fields added after the first release enter the hash only when set, so records
+        # written before them keep their hashes
+        late = {name for name in _LATE_FIELDS if getattr(self, name) is None}
+        body = self.model_dump(mode="json", exclude={"hash"} | late)
         canon = json.dumps(body, sort_keys=True, separators=(",", ":"))
         return hashlib.sha256(canon.encode()).hexdigest()
 

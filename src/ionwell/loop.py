@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import contextlib
 import fcntl
+import json
 import logging
 import os
 import shutil
@@ -196,7 +197,7 @@ def run_step(root: str | Path, step: int) -> StepStatus:
             )
         if records and records[-1].outcome == "stop":
             raise LedgerError(f"step {step}: the campaign stopped at step {records[-1].step}")
-        append_event(paths, step=step, event="started")
+        append_event(paths, step=step, event="started", job=_job_id(paths.step(step) / "engine"))
         try:
             rec = _compute_and_record(paths, step)
         except Exception as err:
@@ -259,6 +260,24 @@ def _scf_variants(campaign: Campaign) -> list[tuple[str, Campaign]]:
     return out
 
 
+def _campaign_relative(workdir: Path) -> str:
+    """``steps/NNNN/engine[/...]``: the engine folder's path inside the campaign folder."""
+    parts = Path(workdir).resolve().parts
+    i = len(parts) - 1 - parts[::-1].index("steps")
+    return "/".join(parts[i:])
+
+
+def _job_id(workdir: Path) -> str | None:
+    """The scheduler job that computed the step: the remote job, or the job we run in."""
+    f = Path(workdir) / "remote_job.json"
+    if f.is_file():
+        try:
+            return str(json.loads(f.read_text())["job"]["job_id"])
+        except (OSError, ValueError, KeyError):
+            return None
+    return os.environ.get("SLURM_JOB_ID") or os.environ.get("PBS_JOBID")
+
+
 def _compute(campaign: Campaign, atoms: Atoms, workdir: Path, ctx: ComputeContext) -> _Computed:
     """Run the engine; when the SCF does not converge, retry with each configured remedy."""
     tried: list[str] = []
@@ -267,7 +286,11 @@ def _compute(campaign: Campaign, atoms: Atoms, workdir: Path, ctx: ComputeContex
         if tried:
             log.warning("step %04d: SCF not converged; retrying with %s", ctx.step, what)
         engine.prepare(atoms, workdir, ctx)
-        if engine.argv(workdir, None) is not None:
+        if variant.remote is not None:
+            from ionwell.remote import execute_remote
+
+            execute_remote(variant, workdir, _campaign_relative(workdir), ctx.step)
+        elif engine.argv(workdir, None) is not None:
             engine.launch(workdir, variant.launcher)
         else:
             engine.run(workdir)
@@ -453,6 +476,7 @@ def _compute_and_record(paths: CampaignPaths, step: int) -> LedgerRecord:
         started=started,
         finished=_now(),
         wall_time=round(time.time() - t0, 3),
+        job_id=_job_id(workdir),
     )
     rec = append_record(paths.ledger, record)
     log.info("step %04d recorded (%s…), %.1f s", step, rec.hash[:12], rec.wall_time)

@@ -3,6 +3,9 @@
 from __future__ import annotations
 
 import json
+import shutil
+import subprocess
+from datetime import datetime
 from pathlib import Path
 
 from pydantic import BaseModel
@@ -24,6 +27,7 @@ class StepRow(BaseModel):
     findings: str
     wall_time: float
     outcome: str
+    job_id: str | None = None
 
 
 class CampaignStatus(BaseModel):
@@ -36,6 +40,10 @@ class CampaignStatus(BaseModel):
     state: str
     detail: str | None = None
     potential_model: str = "exact"
+    steps_per_day: float | None = None
+    remaining_steps: int | None = None
+    eta_hours: float | None = None
+    running_job: str | None = None
 
 
 def campaign_status(root: str | Path) -> CampaignStatus:
@@ -61,6 +69,7 @@ def campaign_status(root: str | Path) -> CampaignStatus:
                 findings=findings,
                 wall_time=rec.wall_time,
                 outcome=rec.outcome,
+                job_id=rec.job_id,
             )
         )
         prev_e = rec.energy
@@ -88,7 +97,13 @@ def campaign_status(root: str | Path) -> CampaignStatus:
             model = str(res.get("potential_model", "exact"))
         except (OSError, ValueError):
             pass
+    pace = _pace(campaign, records) if records else {}
+    job = None
+    if records and records[-1].outcome != "stop":
+        job = _running_job(paths, len(records))
     return CampaignStatus(
+        **pace,
+        running_job=job,
         potential_model=model,
         name=campaign.name,
         folder=str(paths.root),
@@ -99,6 +114,71 @@ def campaign_status(root: str | Path) -> CampaignStatus:
     )
 
 
+def _seconds(stamp: str) -> float | None:
+    try:
+        return datetime.fromisoformat(stamp).timestamp()
+    except (TypeError, ValueError):
+        return None
+
+
+def _pace(campaign, records) -> dict:
+    """Steps per day so far, steps left to the stop rule, and the time that takes at the mean
+    pace of the last (up to) five steps."""
+    out: dict = {}
+    t0, t1 = _seconds(records[0].started), _seconds(records[-1].finished)
+    if t0 is not None and t1 is not None and t1 > t0:
+        out["steps_per_day"] = round(len(records) / ((t1 - t0) / 86400.0), 2)
+    last = records[-1]
+    if last.outcome == "stop":
+        out["remaining_steps"] = 0
+        return out
+    per_step = max(1, campaign.placement.per_step)
+    left = [campaign.stop.max_steps - last.step]
+    if campaign.stop.guests is not None:
+        left.append(-(-(campaign.stop.guests - last.guests) // per_step))
+    remaining = max(0, min(left))
+    out["remaining_steps"] = remaining
+    recent = [r.wall_time for r in records[-5:] if r.wall_time]
+    if recent:
+        out["eta_hours"] = round(remaining * sum(recent) / len(recent) / 3600.0, 3)
+    return out
+
+
+def _running_job(paths: CampaignPaths, step: int) -> str | None:
+    """The job computing ``step`` now: its id, and where known its scheduler state."""
+    f = paths.step(step) / "engine" / "remote_job.json"
+    if f.is_file():
+        try:
+            job = json.loads(f.read_text())["job"]
+            return f"remote job {job['job_id']} on {job['host']} (submitted {job['submitted']})"
+        except (OSError, ValueError, KeyError):
+            return None
+    job_id = None
+    if paths.events.is_file():
+        for line in paths.events.read_text().splitlines():
+            try:
+                e = json.loads(line)
+            except ValueError:
+                continue
+            if e.get("step") == step and e.get("event") == "started":
+                job_id = e.get("job")
+    if not job_id:
+        return None
+    if shutil.which("squeue"):
+        try:
+            out = subprocess.run(
+                ["squeue", "-h", "-j", str(job_id), "-o", "%T %M"],
+                capture_output=True,
+                text=True,
+                timeout=10,
+            ).stdout.split()
+        except (OSError, subprocess.TimeoutExpired):
+            out = []
+        if len(out) >= 2:
+            return f"job {job_id}: {out[0].lower()}, {out[1]} used"
+    return f"job {job_id}"
+
+
 def _fmt(v: float | int | None, spec: str) -> str:
     return "-" if v is None else format(v, spec)
 
@@ -107,14 +187,14 @@ def format_status(st: CampaignStatus) -> str:
     """A fixed-width table a person reads in a terminal."""
     head = (
         f"{'step':>4}  {st.guest + ' in':>6}  {'energy / eV':>16}  {'dE / eV':>10}  "
-        f"{'SCF it':>6}  {'next site / V':>13}  {'time / s':>8}  findings"
+        f"{'SCF it':>6}  {'next site / V':>13}  {'time / s':>8}  {'job':>8}  findings"
     )
     lines = [f"campaign {st.name}  ({st.folder})", head, "-" * len(head)]
     for r in st.rows:
         lines.append(
             f"{r.step:>4}  {r.guests:>6}  {_fmt(r.energy, '16.6f')}  {_fmt(r.delta, '10.4f')}  "
             f"{_fmt(r.scf_iterations, '6d')}  {_fmt(r.site_potential, '13.3f')}  "
-            f"{r.wall_time:8.1f}  {r.findings}"
+            f"{r.wall_time:8.1f}  {r.job_id or '-':>8}  {r.findings}"
         )
     if not st.rows:
         lines.append("  (no finished step yet)")
@@ -124,7 +204,27 @@ def format_status(st: CampaignStatus) -> str:
     lines.append(f"state: {st.state}")
     if st.detail:
         lines.append(f"       {st.detail}")
+    if st.running_job:
+        lines.append(f"       {st.running_job}")
+    pace = []
+    if st.rows:
+        pace.append(f"{len(st.rows)} steps done")
+    if st.steps_per_day is not None:
+        pace.append(f"{st.steps_per_day:g} steps per day so far")
+    if st.remaining_steps:
+        eta = f", about {_duration(st.eta_hours)}" if st.eta_hours is not None else ""
+        pace.append(f"{st.remaining_steps} steps to the stop rule at most{eta}")
+    if pace:
+        lines.append("pace: " + "; ".join(pace))
     return "\n".join(lines)
+
+
+def _duration(hours: float) -> str:
+    if hours < 1:
+        return f"{hours * 60:.0f} min"
+    if hours < 48:
+        return f"{hours:.1f} h"
+    return f"{hours / 24:.1f} days"
 
 
 def status_json(st: CampaignStatus) -> str:

@@ -1,0 +1,44 @@
+"""Shared fixtures. The cluster services live in ``tests/cluster.py``."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+
+import pytest
+from cluster import ClusterUnavailable, SlurmCluster, Sshd, cluster_skip_reason, sshd_skip_reason
+
+
+@pytest.fixture(scope="session")
+def slurm_cluster(tmp_path_factory: pytest.TempPathFactory) -> Iterator[SlurmCluster]:
+    """A single-node SLURM cluster (partition ``debug``, 2 CPUs, jobs run as root) with the
+    PBS wrappers; ``/etc/slurm/slurm.conf`` is ours for the session. Skips with the reason when
+    it cannot run here. Stopped (jobs cancelled, daemons ended, config restored) at session end.
+    """
+    reason = cluster_skip_reason()
+    if reason:
+        pytest.skip(reason)
+    try:
+        cluster = SlurmCluster.start(tmp_path_factory.mktemp("slurm"))
+    except ClusterUnavailable as exc:
+        pytest.skip(f"SLURM test cluster unavailable: {exc}")
+    try:
+        yield cluster
+    finally:
+        cluster.stop()
+
+
+@pytest.fixture(scope="session")
+def sshd_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Sshd]:
+    """A second sshd on 127.0.0.1 (attributes host, port, user, key_file, known_hosts; method
+    ``connect()`` gives a paramiko client). Skips with the reason when it cannot run here."""
+    reason = sshd_skip_reason()
+    if reason:
+        pytest.skip(reason)
+    try:
+        server = Sshd.start(tmp_path_factory.mktemp("sshd"))
+    except ClusterUnavailable as exc:
+        pytest.skip(f"test sshd unavailable: {exc}")
+    try:
+        yield server
+    finally:
+        server.stop()
