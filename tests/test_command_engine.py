@@ -34,7 +34,8 @@ from ionwell.launcher import EngineRunError, command_line, run_program
 
 RUNNER = Path(__file__).parent / "programs" / "pyscf_runner.py"
 
-TEMPLATE = """# pyscf-runner input written by ionwell, step ${step}
+TEMPLATE = """# pyscf-runner input written by ionwell
+step ${step}
 charge ${charge}
 spin ${spin}
 restart ${restart}

@@ -22,7 +22,7 @@ Input (keywords one per line, then the geometry block in Å):
     end
 
 Environment: RUNNER_DELAY (seconds to sleep after each SCF iteration, so a test can kill the
-program mid-run); RUNNER_FAIL=nan|truncate|noenergy|noconverge (write a damaged output, for the
+program mid-run; with RUNNER_DELAY_STEP=N only when the input's ``step`` line says N); RUNNER_FAIL=nan|truncate|noenergy|noconverge (write a damaged output, for the
 error tests).
 """
 
@@ -92,6 +92,9 @@ def main() -> int:
     keys, atoms = _parse(Path(sys.argv[1]))
     fail = os.environ.get("RUNNER_FAIL", "")
     delay = float(os.environ.get("RUNNER_DELAY", "0"))
+    only = os.environ.get("RUNNER_DELAY_STEP")
+    if only is not None and keys.get("step") != only:
+        delay = 0.0
     mol = gto.M(
         atom=atoms,
         unit="Angstrom",
