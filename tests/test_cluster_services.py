@@ -68,26 +68,7 @@ def test_qsub_prints_bare_id_and_qstat_sees_running_job(
     assert jobs[0]["TimeLimit"] == "1"  # walltime=00:01:00 reached SLURM
 
 
-@pytest.mark.slow
-def test_time_limit_kills_job(slurm_cluster: SlurmCluster, tmp_path: Path):
-    sub = _run(
-        [
-            "sbatch",
-            "--parsable",
-            "--time=1",
-            "-J",
-            "iwtimeout",
-            "-o",
-            str(tmp_path / "slow.out"),
-            "--wrap",
-            "sleep 200",
-        ]
-    )
-    assert sub.returncode == 0, sub.stderr
-    job_id = sub.stdout.strip().split(";")[0]
-    t0 = time.monotonic()
-    assert slurm_cluster.wait_job(job_id, timeout=150) == "TIMEOUT"
-    assert time.monotonic() - t0 < 150
+# the time-limit kill is exercised by test_cluster_campaigns (a step job reaching TIMEOUT)
 
 
 def test_paramiko_reaches_sshd_with_key_and_known_hosts(sshd_server: Sshd, tmp_path: Path):
