@@ -24,6 +24,7 @@ passwords and tokens are never written anywhere: only the key file's path is in 
 
 from __future__ import annotations
 
+import contextlib
 import json
 import logging
 import posixpath
@@ -203,12 +204,12 @@ class RemoteSession:
             delay = min(delay * 2, 60.0)
 
     def close(self) -> None:
-        if self._sftp is not None:
-            self._sftp.close()
-            self._sftp = None
-        if self.client is not None:
-            self.client.close()
-            self.client = None
+        for thing in (self._sftp, self.client):
+            if thing is not None:
+                with contextlib.suppress(OSError, EOFError):  # already gone
+                    thing.close()
+        self._sftp = None
+        self.client = None
 
     @property
     def sftp(self):
@@ -217,17 +218,38 @@ class RemoteSession:
         return self._sftp
 
     def run(self, argv: list[str], check: bool = True) -> tuple[int, str, str]:
-        """Run a command (arguments quoted for the remote shell); returns (code, out, err)."""
+        """Run a command (arguments quoted for the remote shell); returns (code, out, err).
+
+        A connection that dropped is opened again (with :meth:`connect`'s backoff) and the
+        command sent once more; commands sent here are queries or idempotent.
+        """
+        import paramiko
+
         cmd = shlex.join(argv)
-        _, out, err = self.client.exec_command(cmd, timeout=self.cfg.timeout)
-        text, etext = out.read().decode(errors="replace"), err.read().decode(errors="replace")
-        code = out.channel.recv_exit_status()
+        try:
+            text, etext, code = self._exec(cmd)
+        except (paramiko.SSHException, OSError, EOFError) as err:
+            log.warning("%s%s: connection lost (%s); reconnecting", self.where, self.cfg.host, err)
+            self.close()
+            self.connect()
+            text, etext, code = self._exec(cmd)
         if check and code != 0:
             raise RemoteError(
                 f"{self.where}{self.cfg.host}: '{cmd}' failed with code {code}: "
                 f"{(etext or text).strip()[-400:]}"
             )
         return code, text, etext
+
+    def _exec(self, cmd: str) -> tuple[str, str, int]:
+        if (
+            self.client is None
+            or not self.client.get_transport()
+            or not (self.client.get_transport().is_active())
+        ):
+            raise EOFError("the SSH connection is closed")
+        _, out, err = self.client.exec_command(cmd, timeout=self.cfg.timeout)
+        text, etext = out.read().decode(errors="replace"), err.read().decode(errors="replace")
+        return text, etext, out.channel.recv_exit_status()
 
     def makedirs(self, path: str) -> None:
         self.run(["mkdir", "-p", path])

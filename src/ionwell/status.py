@@ -100,7 +100,7 @@ def campaign_status(root: str | Path) -> CampaignStatus:
     pace = _pace(campaign, records) if records else {}
     job = None
     if records and records[-1].outcome != "stop":
-        job = _running_job(paths, len(records))
+        job = _running_job(paths, len(records), campaign)
     return CampaignStatus(
         **pace,
         running_job=job,
@@ -144,15 +144,34 @@ def _pace(campaign, records) -> dict:
     return out
 
 
-def _running_job(paths: CampaignPaths, step: int) -> str | None:
+def _remote_state(campaign, job_id: str) -> str:
+    """The remote job's state, asked over SSH (one short connection attempt)."""
+    from ionwell.errors import IonwellError
+    from ionwell.remote import RemoteSession
+
+    cfg = campaign.remote.model_copy(update={"connect_attempts": 1, "timeout": 10.0})
+    try:
+        with RemoteSession(cfg) as ssh:
+            state = ssh.state(job_id)
+    except (IonwellError, OSError) as err:
+        return f"state unknown ({err})"
+    return state.lower() if state else "left the queue"
+
+
+def _running_job(paths: CampaignPaths, step: int, campaign) -> str | None:
     """The job computing ``step`` now: its id, and where known its scheduler state."""
     f = paths.step(step) / "engine" / "remote_job.json"
     if f.is_file():
         try:
             job = json.loads(f.read_text())["job"]
-            return f"remote job {job['job_id']} on {job['host']} (submitted {job['submitted']})"
         except (OSError, ValueError, KeyError):
             return None
+        since = _seconds(job["submitted"])
+        used = ""
+        if since is not None:
+            used = f", {_duration((datetime.now().timestamp() - since) / 3600.0)} since submission"
+        state = _remote_state(campaign, job["job_id"]) if campaign.remote else "unknown"
+        return f"remote job {job['job_id']} on {job['host']}: {state}{used}"
     job_id = None
     if paths.events.is_file():
         for line in paths.events.read_text().splitlines():
