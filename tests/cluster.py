@@ -499,6 +499,10 @@ PartitionName={PARTITION} Nodes={self.node} Default=YES MaxTime=INFINITE State=U
         self._stopped = True
         with contextlib.suppress(Exception):
             atexit.unregister(self.stop)
+        if self._lock_fd is None:
+            # never owned the cluster (e.g. gave up waiting for another session's lock): the
+            # config, key and state file belong to whoever holds the lock; touch nothing
+            return
         names = {d.name for d in self._daemons if d.alive()}
         if {"slurmctld", "slurmd"} <= names:
             self.cancel_all()

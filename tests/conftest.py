@@ -42,18 +42,3 @@ def sshd_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Sshd]:
         yield server
     finally:
         server.stop()
-
-
-#: Test files whose module-scoped fixtures are expensive: all their tests run on one worker.
-_ONE_WORKER_FILES = {"test_campaign_run.py"}
-
-
-def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item]) -> None:
-    """Under pytest-xdist (``make test`` runs two workers, ``--dist loadgroup``) every test that
-    needs the cluster services runs on one worker, so only one SLURM and one sshd are started;
-    a file with an expensive module fixture stays on one worker too."""
-    for item in items:
-        if item.get_closest_marker("cluster") is not None:
-            item.add_marker(pytest.mark.xdist_group("cluster"))
-        elif item.path.name in _ONE_WORKER_FILES:
-            item.add_marker(pytest.mark.xdist_group(item.path.stem))

@@ -1,14 +1,10 @@
-"""Remote mode pieces: the job script (pure), and the SSH session against a real sshd on
-127.0.0.1 (host-key checks, a dropped connection re-opened)."""
+"""Remote mode: the job script (pure). The SSH session and remote campaigns are tested against
+real services in test_cluster.py."""
 
 from __future__ import annotations
 
-import subprocess
-
-import pytest
-
 from ionwell.config import RemoteConfig, parse_campaign
-from ionwell.remote import RemoteError, RemoteSession, job_script
+from ionwell.remote import job_script
 
 
 def _campaign(**compute):
@@ -53,33 +49,3 @@ def test_job_script_for_slurm_and_pbs():
     p = job_script(c, "/w/x", "iw-r-0001", 1, _remote(scheduler="pbs"))
     for line in ("#PBS -N iw-r-0001", "#PBS -l walltime=00:30:00", "#PBS -q p1", "#PBS -A a1"):
         assert line in p.splitlines(), line
-
-
-@pytest.mark.cluster
-def test_host_keys_are_checked_and_a_dropped_connection_reopens(sshd_server, tmp_path):
-    cfg = _remote(
-        host=sshd_server.host,
-        port=sshd_server.port,
-        user=sshd_server.user,
-        key_file=str(sshd_server.key_file),
-        known_hosts=str(sshd_server.known_hosts),
-        connect_attempts=2,
-    )
-    with RemoteSession(cfg, step=4) as ssh:
-        assert ssh.run(["echo", "a b"])[1] == "a b\n"  # arguments quoted for the remote shell
-        ssh.client.get_transport().close()  # the connection drops
-        assert ssh.run(["echo", "again"])[1] == "again\n"
-
-    empty = tmp_path / "empty_known_hosts"
-    empty.write_text("")
-    with pytest.raises(RemoteError, match=r"step 4: .*host key is not in .*refusing"):
-        RemoteSession(cfg.model_copy(update={"known_hosts": str(empty)}), step=4).connect()
-
-    # a known_hosts entry with another key for this host and port: refused as a changed key
-    other = tmp_path / "other_key"
-    subprocess.run(["ssh-keygen", "-q", "-t", "ed25519", "-N", "", "-f", str(other)], check=True)
-    kind, key = other.with_suffix(".pub").read_text().split()[:2]
-    changed = tmp_path / "changed_known_hosts"
-    changed.write_text(f"[{sshd_server.host}]:{sshd_server.port} {kind} {key}\n")
-    with pytest.raises(RemoteError, match="host key differs"):
-        RemoteSession(cfg.model_copy(update={"known_hosts": str(changed)}), step=4).connect()

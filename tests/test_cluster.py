@@ -1,6 +1,9 @@
-"""Campaigns on a real single-node SLURM (and its PBS-style qsub wrappers), and remote mode
-through a real sshd on 127.0.0.1 in front of it. The services are started by the fixtures in
-``tests/cluster.py``; these tests skip with the reason where they cannot run."""
+"""Everything that needs the real cluster services, in one file (``make test`` runs two
+pytest-xdist workers with ``--dist loadfile``, so one worker owns SLURM and sshd): the services
+themselves (sbatch, the PBS-style qsub wrappers, paramiko against the loopback sshd), campaigns
+through the slurm and pbs profiles, a walltime kill and retry, remote mode with re-attach, and
+host-key refusal. The services are started by the fixtures in ``tests/cluster.py``; the tests
+skip with the reason where they cannot run."""
 
 from __future__ import annotations
 
@@ -12,14 +15,18 @@ import sys
 import time
 from pathlib import Path
 
+import paramiko
 import pytest
 import yaml
+from cluster import SlurmCluster, Sshd
 from test_command_engine import COMMAND, TEMPLATE
+from test_remote import _remote as _remote_cfg
 
 from ionwell.campaign import CampaignPaths
 from ionwell.ledger import read_ledger
+from ionwell.remote import RemoteError, RemoteSession
 
-pytestmark = [pytest.mark.cluster, pytest.mark.slow]
+pytestmark = pytest.mark.cluster
 
 IONWELL = [sys.executable, "-m", "ionwell.cli"]
 
@@ -63,6 +70,7 @@ def _records(root: Path, name: str):
     return read_ledger(CampaignPaths(root / "campaigns" / name).ledger)
 
 
+@pytest.mark.slow
 def test_campaign_through_the_slurm_profile(slurm_cluster, tmp_path):
     cfg = _config(tmp_path, "onslurm")
     proc = _run(cfg, tmp_path, "--profile", "slurm")
@@ -83,6 +91,7 @@ def test_campaign_through_the_slurm_profile(slurm_cluster, tmp_path):
     assert all(j in st.stdout for j in ids)
 
 
+@pytest.mark.slow
 def test_campaign_through_the_pbs_profile(slurm_cluster, tmp_path):
     cfg = _config(tmp_path, "onpbs")
     proc = _run(cfg, tmp_path, "--profile", "pbs")
@@ -93,6 +102,7 @@ def test_campaign_through_the_pbs_profile(slurm_cluster, tmp_path):
     assert len(names) >= 3  # one qsub job per compute step
 
 
+@pytest.mark.slow
 def test_walltime_kill_is_retried_with_more_time_and_restarts(slurm_cluster, tmp_path):
     """Step 1's program needs about 100 s (10 s per SCF iteration); the first attempt has a
     one-minute limit and is killed; the retry gets two minutes and continues from the
@@ -131,6 +141,7 @@ def _remote(sshd, tmp: Path, known_hosts: str | None = None) -> dict:
     }
 
 
+@pytest.mark.slow
 def test_remote_campaign_reattaches_after_the_controller_is_killed(
     slurm_cluster, sshd_server, tmp_path
 ):
@@ -174,6 +185,7 @@ def test_remote_campaign_reattaches_after_the_controller_is_killed(
     assert events.count('"started"') >= 4  # step 1 started twice: before and after the kill
 
 
+@pytest.mark.slow
 def test_remote_unknown_host_key_is_refused(sshd_server, tmp_path):
     empty = tmp_path / "known_hosts"
     empty.write_text("")
@@ -186,3 +198,108 @@ def test_remote_unknown_host_key_is_refused(sshd_server, tmp_path):
     assert "host key is not in" in text and "refusing" in text, text[-2000:]
     assert "Traceback" not in proc.stderr
     assert read_ledger(CampaignPaths(tmp_path / "campaigns" / "stranger").ledger) == []
+
+
+# ---------------------------------------------------------------------------------------------
+# the services themselves
+
+
+def _sh(argv: list[str], cwd: Path | None = None) -> subprocess.CompletedProcess:
+    return subprocess.run(argv, capture_output=True, text=True, timeout=30, cwd=cwd)
+
+
+def test_sbatch_job_completes_and_is_counted(slurm_cluster: SlurmCluster, tmp_path: Path):
+    out = tmp_path / "hi.out"
+    sub = _sh(
+        ["sbatch", "--parsable", "--time=1", "-J", "iwhi", "-o", str(out), "--wrap", "echo hi"]
+    )
+    assert sub.returncode == 0, sub.stderr
+    job_id = sub.stdout.strip().split(";")[0]
+    assert slurm_cluster.wait_job(job_id, timeout=60) == "COMPLETED"
+    assert out.read_text().strip() == "hi"
+    jobs = slurm_cluster.submissions("iwhi")
+    assert [j["JobId"] for j in jobs] == [job_id]
+    assert jobs[0]["JobState"] == "COMPLETED"
+    # the jobcomp file is what `sacct -c` reads
+    sacct = _sh(["sacct", "-c", "-X", "-n", "-P", "-o", "JobID,JobName,State"])
+    assert sacct.returncode == 0, sacct.stderr
+    assert f"{job_id}|iwhi|COMPLETED" in sacct.stdout.splitlines()
+
+
+def test_qsub_prints_bare_id_and_qstat_sees_running_job(
+    slurm_cluster: SlurmCluster, tmp_path: Path
+):
+    script = tmp_path / "job.sh"
+    marker = tmp_path / "ran.txt"
+    script.write_text(
+        f"#!/bin/bash\n#PBS -l walltime=00:01:00\n#PBS -N iwpbs\necho ran > {marker}\nsleep 3\n"
+    )
+    sub = _sh(["qsub", str(script)], cwd=tmp_path)
+    assert sub.returncode == 0, sub.stderr
+    job_id = sub.stdout.strip()
+    assert job_id.isdigit(), f"qsub printed {sub.stdout!r}"
+
+    seen_running = False
+    deadline = time.monotonic() + 30
+    while time.monotonic() < deadline and not seen_running:
+        stat = _sh(["qstat", job_id])
+        assert stat.returncode == 0, stat.stderr
+        rows = [line.split() for line in stat.stdout.splitlines() if line.startswith(job_id)]
+        assert rows, stat.stdout
+        assert rows[0][1] == "iwpbs"
+        seen_running = rows[0][4] == "R"
+        time.sleep(0.3)
+    assert seen_running, "qstat never showed the job running"
+
+    assert slurm_cluster.wait_job(job_id, timeout=60) == "COMPLETED"
+    assert marker.read_text().strip() == "ran"
+    jobs = slurm_cluster.submissions("iwpbs")
+    assert [j["JobId"] for j in jobs] == [job_id]
+    assert jobs[0]["TimeLimit"] == "1"  # walltime=00:01:00 reached SLURM
+
+
+# the time-limit kill is exercised by test_cluster_campaigns (a step job reaching TIMEOUT)
+
+
+def test_paramiko_reaches_sshd_with_key_and_known_hosts(sshd_server: Sshd, tmp_path: Path):
+    client = sshd_server.connect()
+    try:
+        _, stdout, _ = client.exec_command("echo ok", timeout=10)
+        assert stdout.read().decode().strip() == "ok"
+        assert stdout.channel.recv_exit_status() == 0
+    finally:
+        client.close()
+
+    empty = tmp_path / "known_hosts_empty"
+    empty.write_text("")
+    with pytest.raises(paramiko.SSHException):
+        sshd_server.connect(known_hosts=empty)
+
+
+def test_host_keys_are_checked_and_a_dropped_connection_reopens(sshd_server, tmp_path):
+    cfg = _remote_cfg(
+        host=sshd_server.host,
+        port=sshd_server.port,
+        user=sshd_server.user,
+        key_file=str(sshd_server.key_file),
+        known_hosts=str(sshd_server.known_hosts),
+        connect_attempts=2,
+    )
+    with RemoteSession(cfg, step=4) as ssh:
+        assert ssh.run(["echo", "a b"])[1] == "a b\n"  # arguments quoted for the remote shell
+        ssh.client.get_transport().close()  # the connection drops
+        assert ssh.run(["echo", "again"])[1] == "again\n"
+
+    empty = tmp_path / "empty_known_hosts"
+    empty.write_text("")
+    with pytest.raises(RemoteError, match=r"step 4: .*host key is not in .*refusing"):
+        RemoteSession(cfg.model_copy(update={"known_hosts": str(empty)}), step=4).connect()
+
+    # a known_hosts entry with another key for this host and port: refused as a changed key
+    other = tmp_path / "other_key"
+    subprocess.run(["ssh-keygen", "-q", "-t", "ed25519", "-N", "", "-f", str(other)], check=True)
+    kind, key = other.with_suffix(".pub").read_text().split()[:2]
+    changed = tmp_path / "changed_known_hosts"
+    changed.write_text(f"[{sshd_server.host}]:{sshd_server.port} {kind} {key}\n")
+    with pytest.raises(RemoteError, match="host key differs"):
+        RemoteSession(cfg.model_copy(update={"known_hosts": str(changed)}), step=4).connect()
