@@ -45,3 +45,13 @@ rule summary:
         f"{CDIR}/summary.json",
     run:
         loop.summarize(CDIR)
+
+
+rule analysis:
+    localrule: CAMPAIGN.resources.light == "local"
+    input:
+        f"{CDIR}/summary.json",
+    output:
+        f"{CDIR}/analysis/analysis.json",
+    run:
+        analysis.analyse(CDIR)

@@ -42,6 +42,8 @@ TINY = {
     "placement": {"within": 3.0},
     "relax": {"enabled": True, "fmax": 0.2, "steps": 2},
     "stop": {"guests": 3, "max_steps": 10},
+    # Li: cohesive energy 1.63 eV/atom (handbook value, from memory); μ = E(Li atom) − 1.63 eV
+    "analysis": {"reference": {"cohesive_energy": 1.63, "source": "Li cohesive energy"}},
 }
 
 
@@ -111,6 +113,29 @@ def test_uninterrupted_campaign_reaches_its_stop_rule(reference):
     host = final.positions[:12]
     d = np.linalg.norm(li[:, None, :] - host[None, :, :], axis=2)
     assert d.min() > 1.5
+
+
+def test_analysis_tables_follow_the_ledger(reference):
+    """Formation energies recomputed from the ledger and the recorded μ; plots are images."""
+    import csv
+
+    from matplotlib.image import imread
+
+    root, _, _, _ = reference
+    paths = CampaignPaths(root / "campaigns" / "tiny")
+    recs = read_ledger(paths.ledger)
+    ref = json.loads((paths.root / "reference.json").read_text())
+    assert ref["mu"] == pytest.approx(ref["atom_energy"] - 1.63)
+    rows = list(csv.DictReader((paths.root / "analysis" / "energetics.csv").open()))
+    assert [int(r["step"]) for r in rows] == [r.step for r in recs]
+    for r, rec in zip(rows, recs, strict=True):
+        ef = rec.energy - recs[0].energy - rec.guests * ref["mu"]
+        assert float(r["formation_eV"]) == pytest.approx(ef, abs=1e-5)
+    on_hull = [int(r["step"]) for r in rows if r["on_hull"] == "1"]
+    assert on_hull[0] == 0 and on_hull[-1] == 3
+    for name in ("hull.png", "voltage.png"):
+        img = imread(paths.root / "analysis" / name)
+        assert img.shape[0] > 200 and img.shape[1] > 300
 
 
 def test_checks_stay_quiet_on_the_relaxed_steps(reference):

@@ -173,6 +173,24 @@ def cmd_replay(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_analyse(args: argparse.Namespace) -> int:
+    from ionwell.analysis import analyse
+
+    summary = analyse(args.campaign)
+    print(f"analysis of {summary.steps} steps written to {summary.folder}: "
+          + ", ".join(summary.files))  # fmt: skip
+    if summary.reference is None:
+        print("  (no analysis.reference in the config: no formation energies, hull or voltage)")
+    else:
+        print(f"  guest μ = {summary.reference.mu:.4f} eV ({summary.reference.source})")
+        print(f"  hull vertices at steps {summary.hull_steps}")
+        if summary.voltages:
+            print("  voltage steps / V: " + ", ".join(f"{v:.3f}" for v in summary.voltages))
+    if summary.caution:
+        print(f"  caution: {summary.caution}")
+    return 0
+
+
 def cmd_schema(args: argparse.Namespace) -> int:
     from ionwell.config import campaign_schema
 
@@ -269,6 +287,10 @@ def build_parser() -> argparse.ArgumentParser:
     rp = sub.add_parser("replay", help="re-derive every decision from the stored maps")
     rp.add_argument("campaign", help="campaign folder")
     rp.set_defaults(func=cmd_replay)
+
+    an = sub.add_parser("analyse", help="energetics tables and plots (also while running)")
+    an.add_argument("campaign", help="campaign folder")
+    an.set_defaults(func=cmd_analyse)
 
     en = sub.add_parser("engines", help="list engine kinds and definitions; check one")
     en.add_argument("action", nargs="?", choices=["list", "check"], default="list")

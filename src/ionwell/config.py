@@ -30,7 +30,9 @@ from ionwell.engine_config import (
 from ionwell.errors import ConfigError
 
 __all__ = [
+    "AnalysisConfig",
     "AseEngineConfig",
+    "GuestReference",
     "Campaign",
     "CommandEngineConfig",
     "EngineConfig",
@@ -330,6 +332,36 @@ class RemoteConfig(_Model):
     timeout: float = Field(30.0, gt=0.0, description="seconds for connecting and each command")
 
 
+class GuestReference(_Model):
+    """The guest's chemical potential μ (eV per guest), with where it comes from.
+
+    Either ``value`` (eV, e.g. the bulk metal's energy per atom from the same engine computed
+    elsewhere), or ``cohesive_energy`` (eV per atom, positive): μ is then the isolated guest
+    atom's energy computed with the campaign's engine minus that cohesive energy.
+    """
+
+    value: float | None = Field(None, description="μ of the guest, eV per guest")
+    cohesive_energy: float | None = Field(
+        None, gt=0.0, description="cohesive energy of the guest's bulk, eV per atom"
+    )
+    source: str = Field("", description="where the value or the cohesive energy comes from")
+
+    @model_validator(mode="after")
+    def _one_way(self) -> GuestReference:
+        if (self.value is None) == (self.cohesive_energy is None):
+            raise ValueError("give exactly one of 'value' or 'cohesive_energy'")
+        return self
+
+
+class AnalysisConfig(_Model):
+    """What the analysis after (or during) the loop needs beyond the steps."""
+
+    reference: GuestReference | None = Field(
+        None, description="the guest's chemical potential (needed for E_f, hull and voltage)"
+    )
+    valence: int = Field(1, ge=1, le=4, description="charge z the guest gives up (voltage)")
+
+
 class StopConfig(_Model):
     """Stop rule: the campaign ends at the first condition met."""
 
@@ -364,6 +396,7 @@ class Campaign(_Model):
     stop: StopConfig = StopConfig()
     resources: ResourcesConfig = ResourcesConfig()
     remote: RemoteConfig | None = None
+    analysis: AnalysisConfig = AnalysisConfig()
 
 
 # ---------------------------------------------------------------------------------------------
