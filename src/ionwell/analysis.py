@@ -16,9 +16,8 @@ The numbers come from :mod:`ionwell.energetics` (pure); this module only reads a
 from __future__ import annotations
 
 import csv
+import io
 import logging
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -112,12 +111,11 @@ def _atom_energy(campaign, workdir: Path) -> float:
 
 
 def _write_csv(path: Path, header: list[str], rows: list[list]) -> None:
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.")
-    with os.fdopen(fd, "w", newline="") as fh:
-        w = csv.writer(fh)
-        w.writerow(header)
-        w.writerows(rows)
-    os.replace(tmp, path)
+    buf = io.StringIO()
+    w = csv.writer(buf)
+    w.writerow(header)
+    w.writerows(rows)
+    atomic_write_text(path, buf.getvalue())
 
 
 def analyse(root: str | Path) -> AnalysisSummary:

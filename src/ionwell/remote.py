@@ -37,6 +37,7 @@ from pathlib import Path
 
 from pydantic import BaseModel
 
+from ionwell.campaign import atomic_write_json
 from ionwell.config import Campaign, RemoteConfig
 from ionwell.errors import IonwellError
 from ionwell.resources import hms, walltime_minutes
@@ -333,12 +334,6 @@ def _now() -> str:
     return datetime.now(UTC).isoformat(timespec="seconds")
 
 
-def _write_json(path: Path, data: dict) -> None:
-    tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(json.dumps(data, indent=2) + "\n")
-    tmp.replace(path)
-
-
 def execute_remote(
     campaign: Campaign,
     workdir: Path,
@@ -390,7 +385,7 @@ def execute_remote(
         if job is None:
             attempts += 1
             job = _submit(ssh, campaign, workdir, remote_dir, relative, step, attempts)
-            _write_json(record, {"job": job.model_dump(), "attempts": attempts})
+            atomic_write_json(record, {"job": job.model_dump(), "attempts": attempts})
         _wait(ssh, job, remote_dir, step, cfg.poll, sleep)
         exit_text = ssh.read_text(posixpath.join(remote_dir, EXIT_FILE))
         n = ssh.get_tree(remote_dir, workdir)

@@ -33,6 +33,7 @@ import numpy as np
 from ase import Atoms
 from ase.io import read, write
 
+from ionwell.campaign import atomic_write_json
 from ionwell.engine_config import (
     ENERGY_UNITS,
     CommandEngineConfig,
@@ -41,6 +42,7 @@ from ionwell.engine_config import (
     ValueSpec,
 )
 from ionwell.engines.base import ComputeContext, StepResult
+from ionwell.engines.results import CONTEXT, INPUT, read_inputs, write_inputs
 from ionwell.errors import ConfigError, EngineOutputError, IonwellError
 from ionwell.grid import Grid
 from ionwell.launcher import fill, run_program
@@ -49,8 +51,6 @@ __all__ = ["CommandEngine", "structure_block"]
 
 log = logging.getLogger("ionwell.engines.command")
 
-INPUT_XYZ = "input.extxyz"
-CONTEXT = "context.json"
 STATE = "command.json"
 
 #: Vacuum (Å) on each side of a non-periodic structure in the ``${box}`` placeholder.
@@ -181,10 +181,10 @@ class CommandEngine:
                 restart_from = "previous step"
                 log.info("%swarm start from the previous step: %s", where, ", ".join(copied))
 
-        a = Atoms(atoms.get_chemical_symbols(), positions=atoms.positions, cell=atoms.cell)
-        a.pbc = atoms.pbc
-        write(workdir / INPUT_XYZ, a, format="extxyz")
-        (workdir / CONTEXT).write_text(context.model_dump_json(indent=2) + "\n")
+        write_inputs(atoms, workdir, context, keep_cell=True)
+        a = Atoms(
+            atoms.get_chemical_symbols(), positions=atoms.positions, cell=atoms.cell, pbc=atoms.pbc
+        )
         values = self.values(a, context, restart_from is not None)
         target = workdir / cfg.input.file
         if cfg.input.format is not None:
@@ -207,10 +207,11 @@ class CommandEngine:
         for name, text in cfg.extra_inputs.items():
             (workdir / name).write_text(fill(text, values, f"engine.extra_inputs.{name}"))
         state = {"restart": restart_from, "values": {k: values[k] for k in ("charge", "spin")}}
-        (workdir / STATE).write_text(json.dumps(state, indent=2) + "\n")
+        atomic_write_json(workdir / STATE, state)
 
     def argv(self, workdir: Path, launcher: object | None = None) -> list[str] | None:
-        """The program's argv with placeholders filled (the launcher adds its prefix)."""
+        """The program's argv as configured; its placeholders are filled by the launcher
+        (:meth:`launch`), which also adds the launcher's prefix."""
         return list(self.cfg.argv)
 
     def commands(self) -> list[list[str]]:
@@ -220,8 +221,7 @@ class CommandEngine:
     def placeholder_values(self, workdir: Path) -> dict[str, Any]:
         """The placeholder values recorded by :meth:`prepare` (for the launcher)."""
         workdir = Path(workdir)
-        atoms = read(workdir / INPUT_XYZ)
-        ctx = ComputeContext.model_validate_json((workdir / CONTEXT).read_text())
+        atoms, ctx = read_inputs(workdir)
         state = json.loads((workdir / STATE).read_text())
         return self.values(atoms, ctx, state.get("restart") is not None)
 
@@ -251,7 +251,7 @@ class CommandEngine:
             )
         state = json.loads((workdir / STATE).read_text())
         state["seconds"] = round(seconds, 3)
-        (workdir / STATE).write_text(json.dumps(state, indent=2) + "\n")
+        atomic_write_json(workdir / STATE, state)
         return seconds
 
     # -- reading ------------------------------------------------------------------------------
@@ -332,7 +332,7 @@ class CommandEngine:
         where = self._step(workdir)
         cfg, out = self.cfg, self.cfg.outputs
         try:
-            atoms = read(workdir / INPUT_XYZ)
+            atoms = read(workdir / INPUT)
             ctx = ComputeContext.model_validate_json((workdir / CONTEXT).read_text())
             state = json.loads((workdir / STATE).read_text())
         except (OSError, ValueError) as err:

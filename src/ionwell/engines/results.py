@@ -16,7 +16,6 @@ from __future__ import annotations
 import json
 import logging
 import math
-import os
 from collections.abc import Iterable
 from pathlib import Path
 
@@ -24,6 +23,7 @@ import numpy as np
 from ase import Atoms
 from pydantic import ValidationError
 
+from ionwell.campaign import atomic_write_text as atomic_write
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.errors import EngineOutputError, GridError
 from ionwell.grid import Grid, load_npz
@@ -46,17 +46,6 @@ INPUT = "input.extxyz"
 CONTEXT = "context.json"
 OUTPUT = "output.json"
 POTENTIAL = "potential.npz"
-
-
-def atomic_write(path: Path, text: str) -> None:
-    """Write ``text`` to ``path`` under a temporary name, fsync, then rename into place."""
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp")
-    with tmp.open("w") as f:
-        f.write(text)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
 
 
 def write_inputs(
