@@ -49,3 +49,24 @@ def test_job_script_for_slurm_and_pbs():
     p = job_script(c, "/w/x", "iw-r-0001", 1, _remote(scheduler="pbs"))
     for line in ("#PBS -N iw-r-0001", "#PBS -l walltime=00:30:00", "#PBS -q p1", "#PBS -A a1"):
         assert line in p.splitlines(), line
+
+
+def test_inputs_digest_follows_the_staged_inputs(tmp_path):
+    """A job record is re-attached only for the same inputs: another site (a rejected one
+    replaced) or another engine setting (an SCF retry) gives another digest."""
+    from ase import Atoms
+    from ase.io import write
+
+    from ionwell.engines.base import ComputeContext
+    from ionwell.remote import inputs_digest
+
+    c = _campaign()
+    write(tmp_path / "input.extxyz", Atoms("Li", positions=[[0, 0, 1.5]]))
+    (tmp_path / "context.json").write_text(ComputeContext(step=1, charge=1).model_dump_json())
+    first = inputs_digest(c, tmp_path)
+    assert inputs_digest(c, tmp_path) == first
+    write(tmp_path / "input.extxyz", Atoms("Li", positions=[[0, 0, -1.5]]))
+    moved = inputs_digest(c, tmp_path)
+    assert moved != first
+    retry = c.model_copy(update={"engine": c.engine.model_copy(update={"max_cycle": 300})})
+    assert inputs_digest(retry, tmp_path) != moved

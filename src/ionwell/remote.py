@@ -25,6 +25,7 @@ passwords and tokens are never written anywhere: only the key file's path is in 
 from __future__ import annotations
 
 import contextlib
+import hashlib
 import json
 import logging
 import posixpath
@@ -42,7 +43,14 @@ from ionwell.config import Campaign, RemoteConfig
 from ionwell.errors import IonwellError
 from ionwell.resources import hms, walltime_minutes
 
-__all__ = ["RemoteError", "RemoteJob", "RemoteSession", "execute_remote", "job_script"]
+__all__ = [
+    "RemoteError",
+    "RemoteJob",
+    "RemoteSession",
+    "execute_remote",
+    "inputs_digest",
+    "job_script",
+]
 
 log = logging.getLogger("ionwell.remote")
 
@@ -69,6 +77,7 @@ class RemoteJob(BaseModel):
     attempt: int
     submitted: str
     walltime_minutes: int
+    inputs: str = ""  # digest of the staged inputs (see inputs_digest)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -364,6 +373,14 @@ def execute_remote(
         except (ValueError, KeyError) as err:
             raise RemoteError(f"step {step}: {record}: unreadable job record ({err})") from None
 
+    if job is not None and job.inputs != inputs_digest(campaign, workdir):
+        log.info(
+            "step %04d: the inputs changed since remote job %s (an SCF retry or another site); "
+            "submitting a new job",
+            step,
+            job.job_id,
+        )
+        job, attempts = None, 0
     with RemoteSession(cfg, step) as ssh:
         if job is not None:
             state = ssh.state(job.job_id)
@@ -404,6 +421,27 @@ def execute_remote(
     return job
 
 
+def inputs_digest(campaign: Campaign, workdir: Path) -> str:
+    """sha256 of what a remote job computes: the structure and context written by
+    ``engine.prepare`` and the engine, relaxation and launcher settings. A job record is
+    re-attached to only when this matches, so an SCF retry or a rejected site in the same
+    engine folder is submitted anew rather than served the earlier job's outputs."""
+    h = hashlib.sha256()
+    for name in ("input.extxyz", "context.json"):
+        f = Path(workdir) / name
+        h.update(name.encode() + b"\0" + (f.read_bytes() if f.is_file() else b"") + b"\0")
+    h.update(json.dumps(_job_spec(campaign), sort_keys=True).encode())
+    return h.hexdigest()
+
+
+def _job_spec(campaign: Campaign) -> dict:
+    return {
+        "engine": campaign.engine.model_dump(mode="json"),
+        "relax": campaign.relax.model_dump(mode="json"),
+        "launcher": campaign.launcher.model_dump(mode="json"),
+    }
+
+
 def _submit(
     ssh: RemoteSession,
     campaign: Campaign,
@@ -418,12 +456,7 @@ def _submit(
     ssh.makedirs(remote_dir)
     ssh.run(["rm", "-f", posixpath.join(remote_dir, EXIT_FILE)])
     n = ssh.put_tree(workdir, remote_dir, skip=_LOCAL_ONLY)
-    spec = {
-        "engine": campaign.engine.model_dump(mode="json"),
-        "relax": campaign.relax.model_dump(mode="json"),
-        "launcher": campaign.launcher.model_dump(mode="json"),
-    }
-    ssh.write_text(posixpath.join(remote_dir, SPEC_FILE), json.dumps(spec, indent=2))
+    ssh.write_text(posixpath.join(remote_dir, SPEC_FILE), json.dumps(_job_spec(campaign), indent=2))
     name = f"iw-{campaign.name}-{step:04d}"
     if relative.rstrip("/").split("/")[-1] != "engine":
         name += "-" + relative.rstrip("/").split("/")[-1]
@@ -439,6 +472,7 @@ def _submit(
         attempt=attempt,
         submitted=_now(),
         walltime_minutes=walltime_minutes(campaign, attempt),
+        inputs=inputs_digest(campaign, workdir),
     )
     log.info(
         "step %04d: staged %d files to %s:%s; submitted job %s (attempt %d, %d min)",
