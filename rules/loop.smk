@@ -47,10 +47,34 @@ rule summary:
         loop.summarize(CDIR)
 
 
+def _reference(wildcards):
+    return [f"{CDIR}/reference.json"] if CAMPAIGN.analysis.reference is not None else []
+
+
+if CAMPAIGN.analysis.reference is not None:
+
+    # The guest's chemical potential: a given value, or the bulk metal / isolated atom computed
+    # with the campaign's engine (a compute job beside the steps).
+    rule reference:
+        localrule: CAMPAIGN.analysis.reference.value is not None
+        input:
+            f"{CDIR}/campaign.yaml",
+        output:
+            f"{CDIR}/reference.json",
+        threads: CAMPAIGN.resources.compute.threads
+        resources:
+            runtime=lambda wildcards, attempt: walltime_minutes(CAMPAIGN, attempt),
+            walltime_hms=lambda wildcards, attempt: hms(walltime_minutes(CAMPAIGN, attempt)),
+            **step_resources(CAMPAIGN),
+        run:
+            analysis.guest_reference(CDIR)
+
+
 rule analysis:
     localrule: CAMPAIGN.resources.light == "local"
     input:
         f"{CDIR}/summary.json",
+        _reference,
     output:
         f"{CDIR}/analysis/analysis.json",
     run:

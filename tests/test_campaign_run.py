@@ -133,9 +133,69 @@ def test_analysis_tables_follow_the_ledger(reference):
         assert float(r["formation_eV"]) == pytest.approx(ef, abs=1e-5)
     on_hull = [int(r["step"]) for r in rows if r["on_hull"] == "1"]
     assert on_hull[0] == 0 and on_hull[-1] == 3
-    for name in ("hull.png", "voltage.png"):
+    summary = json.loads((paths.root / "analysis" / "analysis.json").read_text())
+    for name in ("hull.png", "voltage.png", "rim.png", "charges.png", "dos.png"):
+        assert name in summary["files"]
         img = imread(paths.root / "analysis" / name)
         assert img.shape[0] > 200 and img.shape[1] > 300
+    # one benzene sheet: no gallery, so no layer table
+    assert "layers.csv" not in summary["files"]
+
+
+def test_analysis_of_a_campaign_still_running(reference, tmp_path):
+    """A campaign whose ledger holds only the first steps is analysed as far as it got."""
+    import csv
+    import shutil
+
+    root, _, _, _ = reference
+    src = root / "campaigns" / "tiny"
+    copy = tmp_path / "tiny"
+    shutil.copytree(src, copy, ignore=shutil.ignore_patterns("analysis", "summary.json"))
+    lines = (copy / "ledger.jsonl").read_text().splitlines(keepends=True)
+    (copy / "ledger.jsonl").write_text("".join(lines[:2]))
+    proc = subprocess.run([*IONWELL, "analyse", str(copy)], capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stderr
+    rows = list(csv.DictReader((copy / "analysis" / "energetics.csv").open()))
+    assert [int(r["step"]) for r in rows] == [0, 1]
+
+
+def test_charge_and_dos_tables_follow_the_step_results(reference):
+    """Per-step charges, frontier levels and DOS against the engine's own recorded numbers."""
+    import csv
+
+    from scipy.integrate import trapezoid
+
+    root, _, _, _ = reference
+    paths = CampaignPaths(root / "campaigns" / "tiny")
+    out = paths.root / "analysis"
+    results = [json.loads((paths.step(s) / "result.json").read_text()) for s in range(4)]
+    q0 = np.array(results[0]["charges"])
+    for row, res in zip(csv.DictReader((out / "charges.csv").open()), results, strict=True):
+        q = np.array(res["charges"])
+        n = len(q) - 12
+        gained = float(row["host_electrons_gained_e"])
+        assert gained == pytest.approx(-(q[:12] - q0).sum(), abs=1e-4)
+        # Mulliken charges sum to the system charge (PySCF; common practice): in cation mode
+        # every guest adds +1, so guest charge minus the host's electron gain is n
+        if n:
+            mean = float(row["mean_guest_charge_e"])
+            assert n * mean - gained == pytest.approx(n, abs=1e-3)
+            assert row["scheme"] == "mulliken"
+    levels = list(csv.DictReader((out / "electronic.csv").open()))
+    assert [r["level"] for r in levels] == ["homo"] * 4
+    for r, res in zip(levels, results, strict=True):
+        assert float(r["shift_eV"]) == pytest.approx(res["homo"] - results[0]["homo"], abs=1e-3)
+    # the DOS of each step, sampled over its window, holds at most its number of states (two per
+    # orbital, restricted) and nearly all of them when the window spans all levels
+    table = np.loadtxt(out / "dos.csv", delimiter=",", skiprows=1)
+    for k, res in enumerate(results):
+        states = 2 * len(res["orbital_energies"][0])
+        total = trapezoid(table[:, k + 1], table[:, 0])
+        assert 0 < total <= states * (1 + 1e-3)
+    sites = list(csv.DictReader((out / "sites.csv").open()))
+    assert [int(r["guests"]) for r in sites] == [0, 1, 2, 3]
+    # a single small sheet is all rim: every guest within 3 Å of its edge
+    assert [r["rim_guests"] for r in sites] == ["0", "1", "2", "3"]
 
 
 def test_checks_stay_quiet_on_the_relaxed_steps(reference):

@@ -1,16 +1,23 @@
-"""Analysis of a campaign folder (I/O): the guest reference, energetics tables and plots.
+"""Analysis of a campaign folder (I/O): the guest reference, tables and plots.
 
-:func:`guest_reference` establishes μ of the guest (given, or the isolated atom computed with
-the campaign's engine minus a cohesive energy) and records it with its source in
-``reference.json``. :func:`analyse` reads the ledger — of a finished campaign or one still
-running — and writes into ``analysis/``:
+:func:`guest_reference` establishes μ of the guest (given; the bulk metal computed with the
+campaign's engine; or the isolated atom minus a cohesive energy) and records it with its source
+in ``reference.json`` (the Snakemake rule ``reference``). :func:`analyse` reads the ledger — of a
+finished campaign or one still running — and writes into ``analysis/``:
 
-* ``energetics.csv``: step, guests, x, total energy, formation energy, energy above the hull,
-  on-hull flag, capacity (mAh/g);
-* ``voltage.csv``: the voltage steps between hull vertices;
-* ``hull.png`` and ``voltage.png``.
+* ``energetics.csv`` (step, guests, x, total energy, formation energy, energy above the hull,
+  on-hull flag, capacity mAh/g), ``voltage.csv`` (voltage steps between hull vertices),
+  ``hull.png``, ``voltage.png``;
+* ``layers.csv`` (per step and gallery: spacing, guests, registry, stage), ``occupancy_map.png``,
+  ``stacking.png`` — for layered hosts;
+* ``sites.csv`` (rim / interior guests, nearest guest–guest distances), ``rim.png``;
+* ``charges.csv`` (mean guest charge, electrons gained by the host, rim / interior),
+  ``charges.png``; ``electronic.csv`` (Fermi level or HOMO and its shift), ``dos.csv``,
+  ``dos.png``;
+* ``analysis.json``, the :class:`AnalysisSummary` listing the files in reading order.
 
-The numbers come from :mod:`ionwell.energetics` (pure); this module only reads and writes.
+The numbers come from pure modules (:mod:`ionwell.energetics`, :mod:`ionwell.diagnostics`,
+:mod:`ionwell.dos`), the figures from :mod:`ionwell.plots`; this module reads and writes.
 """
 
 from __future__ import annotations
@@ -25,8 +32,11 @@ from ase import Atoms
 from ase.io import read
 from pydantic import BaseModel
 
-from ionwell import energetics
+from ionwell import energetics, plots
 from ionwell.campaign import CampaignPaths, atomic_write_text, load_frozen
+from ionwell.diagnostics import diagnose, nearest_summary
+from ionwell.dos import dos_on_grid, frontier_level
+from ionwell.engines.base import StepResult
 from ionwell.errors import IonwellError
 from ionwell.host import host_formula_units
 from ionwell.ledger import read_ledger
@@ -42,6 +52,8 @@ class Reference(BaseModel):
     mu: float  # eV per guest
     source: str
     atom_energy: float | None = None  # eV, isolated atom with the campaign's engine
+    bulk_energy: float | None = None  # eV, the bulk reference cell with the campaign's engine
+    bulk_atoms: int | None = None
     cohesive_energy: float | None = None  # eV per atom
 
 
@@ -73,8 +85,23 @@ def guest_reference(root: str | Path) -> Reference | None:
         return Reference.model_validate_json(f.read_text())
     if ref.value is not None:
         out = Reference(mu=ref.value, source=ref.source or "given in the campaign config")
+    elif ref.bulk is not None:
+        bulk = _bulk_structure(campaign.guest.element, ref.bulk)
+        energy = _energy(campaign, bulk, paths.root / "reference")
+        out = Reference(
+            mu=energy / len(bulk),
+            source=(
+                f"bulk {campaign.guest.element} ({bulk.get_chemical_formula()}, "
+                f"{ref.bulk.crystal or 'ASE reference state'}) computed with the "
+                f"{campaign.engine.kind} engine, energy per atom"
+                + (f" ({ref.source})" if ref.source else "")
+            ),
+            bulk_energy=energy,
+            bulk_atoms=len(bulk),
+        )
     else:
-        energy = _atom_energy(campaign, paths.root / "reference")
+        atom = Atoms(campaign.guest.element, positions=[[0.0, 0.0, 0.0]])
+        energy = _energy(campaign, atom, paths.root / "reference")
         out = Reference(
             mu=energy - float(ref.cohesive_energy),
             source=(
@@ -90,7 +117,22 @@ def guest_reference(root: str | Path) -> Reference | None:
     return out
 
 
-def _atom_energy(campaign, workdir: Path) -> float:
+def _bulk_structure(element: str, spec) -> Atoms:
+    """The bulk reference cell (``ase.build.bulk``), repeated as the config asks."""
+    from ase.build import bulk
+
+    try:
+        cell = bulk(element, spec.crystal, a=spec.a, c=spec.c, cubic=spec.cubic)
+    except (ValueError, KeyError, RuntimeError) as err:
+        raise IonwellError(
+            f"analysis.reference.bulk: cannot build bulk {element} ({err}); give 'crystal' "
+            "and 'a' (Å)"
+        ) from None
+    return cell.repeat(spec.repeat)
+
+
+def _energy(campaign, atoms: Atoms, workdir: Path) -> float:
+    """Energy (eV) of ``atoms`` with the campaign's engine, no relaxation, no potential map."""
     from ionwell.engines import get_engine
     from ionwell.engines.base import ComputeContext
 
@@ -98,15 +140,17 @@ def _atom_energy(campaign, workdir: Path) -> float:
         update={"relax": campaign.relax.model_copy(update={"enabled": False})}
     )
     engine = get_engine(variant)
-    atom = Atoms(campaign.guest.element, positions=[[0.0, 0.0, 0.0]])
-    engine.prepare(atom, workdir, ComputeContext(step=0, charge=0))
+    engine.prepare(atoms, workdir, ComputeContext(step=0, charge=0, potential=False))
     if engine.argv(workdir, None) is not None:
         engine.launch(workdir, campaign.launcher)
     else:
         engine.run(workdir)
     result, _ = engine.collect(workdir)
     if not result.scf_converged:
-        raise IonwellError(f"{workdir}: the SCF of the isolated guest atom did not converge")
+        raise IonwellError(
+            f"{workdir}: the SCF of the guest reference ({atoms.get_chemical_formula()}) did "
+            "not converge"
+        )
     return float(result.energy)
 
 
@@ -119,7 +163,10 @@ def _write_csv(path: Path, header: list[str], rows: list[list]) -> None:
 
 
 def analyse(root: str | Path) -> AnalysisSummary:
-    """Write the energetics tables and plots of the campaign in ``root`` into ``analysis/``."""
+    """Write the tables and plots of the campaign in ``root`` into ``analysis/``.
+
+    Works on a finished campaign and on one still running (the steps in the ledger so far).
+    """
     paths = CampaignPaths(Path(root))
     campaign = load_frozen(paths)
     records = [r for r in read_ledger(paths.ledger) if r.energy is not None]
@@ -137,11 +184,12 @@ def analyse(root: str | Path) -> AnalysisSummary:
                 *np.unique(host.get_chemical_symbols(), return_counts=True), strict=True
             )
         }
+    z = campaign.analysis.valence
     n = [r.guests for r in records]
     e = [float(r.energy) for r in records]
     x = [k / units for k in n]
     ref = guest_reference(paths.root)
-    files = []
+    files: list[str] = []
     rows = []
     hull_steps: list[int] = []
     voltages: list[float] = []
@@ -149,13 +197,13 @@ def analyse(root: str | Path) -> AnalysisSummary:
         ef = energetics.formation_energies(e, n, ref.mu)
         h = energetics.hull(n, ef)
         hull_steps = [records[i].step for i in h.vertices]
-        steps = energetics.voltage_profile(e, n, ref.mu, units, campaign.analysis.valence)
+        steps = energetics.voltage_profile(e, n, ref.mu, units, z)
         voltages = [s.voltage for s in steps]
         for i, r in enumerate(records):
             rows.append(
                 [r.step, r.guests, f"{x[i]:.6f}", f"{e[i]:.6f}", f"{ef[i]:.6f}",
                  f"{h.above[i]:.6f}", int(i in h.vertices),
-                 f"{energetics.capacity_mah_per_g(x[i], unit, campaign.analysis.valence):.3f}"]
+                 f"{energetics.capacity_mah_per_g(x[i], unit, z):.3f}"]
             )  # fmt: skip
         _write_csv(
             out / "voltage.csv",
@@ -163,13 +211,13 @@ def analyse(root: str | Path) -> AnalysisSummary:
             [[s.n_from, s.n_to, f"{s.x_from:.6f}", f"{s.x_to:.6f}", f"{s.voltage:.6f}"]
              for s in steps],
         )  # fmt: skip
-        files.append("voltage.csv")
-        _plots(out, campaign.guest.element, x, ef, h, steps, unit, campaign.analysis.valence)
-        files += ["hull.png", "voltage.png"]
+        plots.hull_plot(out / "hull.png", campaign.guest.element, x, ef, h, unit)
+        plots.voltage_plot(out / "voltage.png", campaign.guest.element, steps, unit, z)
+        files += ["hull.png", "voltage.png", "voltage.csv"]
     else:
         for i, r in enumerate(records):
             rows.append([r.step, r.guests, f"{x[i]:.6f}", f"{e[i]:.6f}", "", "", "",
-                         f"{energetics.capacity_mah_per_g(x[i], unit, 1):.3f}"])  # fmt: skip
+                         f"{energetics.capacity_mah_per_g(x[i], unit, z):.3f}"])  # fmt: skip
         if ref is None:
             log.info("no analysis.reference in the config: formation energies, hull and voltage "
                      "need the guest's chemical potential")  # fmt: skip
@@ -180,6 +228,7 @@ def analyse(root: str | Path) -> AnalysisSummary:
         rows,
     )  # fmt: skip
     files.insert(0, "energetics.csv")
+    files += _step_tables(paths, campaign, records, len(host), out)
     caution = None
     if ref is not None and campaign.guest.charge_mode == "cation":
         caution = (
@@ -201,43 +250,133 @@ def analyse(root: str | Path) -> AnalysisSummary:
     return summary
 
 
-def _plots(out: Path, guest: str, x, ef, h, steps, unit, z: int) -> None:
-    import matplotlib
+def _step_result(paths: CampaignPaths, step: int) -> tuple[Atoms, StepResult]:
+    folder = paths.step(step)
+    try:
+        result = StepResult.model_validate_json((folder / "result.json").read_text())
+        atoms = read(folder / "relaxed.extxyz")
+    except (OSError, ValueError) as err:
+        raise IonwellError(f"{folder}: cannot read the step's result ({err})") from None
+    return atoms, result
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
 
-    name = "".join(f"{el}{k if k != 1 else ''}" for el, k in unit.items())
-    fig, ax = plt.subplots(figsize=(6, 4), dpi=120)
-    on = [i for i in range(len(x)) if i in h.vertices]
-    off = [i for i in range(len(x)) if i not in h.vertices]
-    ax.plot([x[i] for i in h.vertices], [ef[i] for i in h.vertices], "-", color="0.3", lw=1.5,
-            label="lower hull")  # fmt: skip
-    ax.scatter([x[i] for i in on], [ef[i] for i in on], s=40, color="tab:blue", zorder=3,
-               label="on the hull")  # fmt: skip
-    ax.scatter([x[i] for i in off], [ef[i] for i in off], s=40, facecolors="none",
-               edgecolors="tab:red", zorder=3, label="above the hull")  # fmt: skip
-    ax.set_xlabel(f"x in {guest}$_x${name}")
-    ax.set_ylabel("formation energy / eV")
-    ax.axhline(0, color="0.8", lw=0.8)
-    ax.legend(frameon=False)
-    ax.set_title("Formation energy and convex hull (model result)")
-    fig.tight_layout()
-    fig.savefig(out / "hull.png")
-    plt.close(fig)
+def _fmt(v: float | int | None, spec: str = ".4f") -> str:
+    return "" if v is None else format(v, spec)
 
-    fig, ax = plt.subplots(figsize=(6, 4), dpi=120)
-    for s in steps:
-        cap = [energetics.capacity_mah_per_g(s.x_from, unit, z),
-               energetics.capacity_mah_per_g(s.x_to, unit, z)]  # fmt: skip
-        ax.plot(cap, [s.voltage, s.voltage], color="tab:blue", lw=2)
-    for a, b in zip(steps[:-1], steps[1:], strict=True):
-        c = energetics.capacity_mah_per_g(a.x_to, unit, z)
-        ax.plot([c, c], [a.voltage, b.voltage], color="tab:blue", lw=1, ls=":")
-    ax.set_xlabel(f"capacity / mAh g$^{{-1}}$ of {name}")
-    ax.set_ylabel(f"voltage vs {guest}/{guest}$^{{{z}+}}$ / V" if z > 1 else
-                  f"voltage vs {guest}/{guest}$^+$ / V")  # fmt: skip
-    ax.set_title("Voltage steps between hull vertices (model result)")
-    fig.tight_layout()
-    fig.savefig(out / "voltage.png")
-    plt.close(fig)
+
+def _step_tables(paths: CampaignPaths, campaign, records, n_host: int, out: Path) -> list[str]:
+    """Per-step layers, sites, charges, frontier level and DOS: CSV tables and plots."""
+    cfg = campaign.analysis
+    results = [_step_result(paths, r.step) for r in records]
+    pristine = next((res for r, (_, res) in zip(records, results, strict=True) if r.step == 0),
+                    None)  # fmt: skip
+    p_charges = None
+    p_front = None
+    if pristine is not None:
+        p_charges = None if pristine.charges is None else pristine.charges[:n_host]
+        p_front = frontier_level(pristine.fermi_level, pristine.homo, pristine.lumo)
+    diags = [
+        diagnose(
+            r.step,
+            atoms,
+            n_host,
+            charges=res.charges,
+            charge_scheme=res.charge_scheme,
+            pristine_charges=p_charges,
+            fermi=res.fermi_level,
+            homo=res.homo,
+            lumo=res.lumo,
+            pristine_frontier=p_front,
+            rim_width=cfg.rim_width,
+        )
+        for r, (atoms, res) in zip(records, results, strict=True)
+    ]
+    files: list[str] = []
+
+    layered = [d for d in diags if d.galleries]
+    if layered:
+        _write_csv(
+            out / "layers.csv",
+            ["step", "guests", "gallery", "lower_layer", "upper_layer", "spacing_A",
+             "gallery_guests", "registry", "matched_fraction", "stage", "staging"],
+            [[d.step, d.guests, g.index, g.lower, g.upper, f"{g.spacing:.4f}", g.guests,
+              g.registry or "", _fmt(g.matched_fraction, ".3f"), _fmt(d.stage, "d"),
+              d.staging or ""] for d in layered for g in d.galleries],
+        )  # fmt: skip
+        plots.occupancy_map(out / "occupancy_map.png", layered)
+        plots.stacking_plot(out / "stacking.png", layered)
+        files += ["occupancy_map.png", "stacking.png", "layers.csv"]
+
+    site_rows = []
+    for d in diags:
+        dmin, dmean = nearest_summary(d.nearest_guest)
+        site_rows.append(
+            [d.step, d.guests, _fmt(d.rim_guests, "d"), _fmt(d.interior_guests, "d"),
+             _fmt(d.guests_outside, "d"), _fmt(dmin), _fmt(dmean),
+             " ".join(f"{v:.3f}" for v in d.guest_depths)]
+        )  # fmt: skip
+    _write_csv(
+        out / "sites.csv",
+        ["step", "guests", "rim_guests", "interior_guests", "guests_outside_galleries",
+         "nearest_guest_min_A", "nearest_guest_mean_A", "guest_depths_A"],
+        site_rows,
+    )  # fmt: skip
+    if any(d.rim_guests is not None for d in diags) and any(d.guests for d in diags):
+        plots.rim_plot(out / "rim.png", diags, cfg.rim_width)
+        files.append("rim.png")
+    files.append("sites.csv")
+
+    if any(d.host_electrons_gained is not None for d in diags):
+        _write_csv(
+            out / "charges.csv",
+            ["step", "guests", "scheme", "mean_guest_charge_e", "host_electrons_gained_e",
+             "host_rim_electrons_gained_e", "host_interior_electrons_gained_e"],
+            [[d.step, d.guests, d.charge_scheme or "", _fmt(d.mean_guest_charge),
+              _fmt(d.host_electrons_gained), _fmt(d.host_electrons_gained_rim),
+              _fmt(d.host_electrons_gained_interior)] for d in diags],
+        )  # fmt: skip
+        plots.charges_plot(out / "charges.png", diags)
+        files += ["charges.png", "charges.csv"]
+
+    if any(d.frontier is not None for d in diags):
+        _write_csv(
+            out / "electronic.csv",
+            ["step", "guests", "level", "level_eV", "shift_eV", "gap_eV"],
+            [[d.step, d.guests, d.frontier.kind if d.frontier else "",
+              _fmt(d.frontier.value if d.frontier else None), _fmt(d.frontier_shift),
+              _fmt(d.frontier.gap if d.frontier else None)] for d in diags],
+        )  # fmt: skip
+        files.append("electronic.csv")
+    files += _dos(out, records, [res for _, res in results], diags, cfg.dos_width)
+    return files
+
+
+def _dos(out: Path, records, results: list[StepResult], diags, width: float) -> list[str]:
+    """DOS of every step with orbital energies on one energy window: dos.csv and dos.png."""
+    have = [(r.step, res, d) for r, res, d in zip(records, results, diags, strict=True)
+            if res.orbital_energies]  # fmt: skip
+    if not have:
+        return []
+    levels = [d.frontier.value for _, _, d in have if d.frontier is not None]
+    all_e = np.concatenate([np.concatenate([np.asarray(c) for c in res.orbital_energies])
+                            for _, res, _ in have])  # fmt: skip
+    lo = (min(levels) - 15.0) if levels else float(all_e.min())
+    hi = (max(levels) + 8.0) if levels else float(all_e.max())
+    lo, hi = max(lo, float(all_e.min()) - 3 * width), min(hi, float(all_e.max()) + 3 * width)
+    curves = []
+    columns = []
+    energies = None
+    for step, res, d in have:
+        energies, y = dos_on_grid(res.orbital_energies, lo, hi, npts=1200, width=width)
+        curves.append((step, y, None if d.frontier is None else d.frontier.value))
+        columns.append(y)
+    _write_csv(
+        out / "dos.csv",
+        ["energy_eV", *[f"step_{s}" for s, _, _ in have]],
+        [[f"{energies[i]:.4f}", *[f"{c[i]:.5f}" for c in columns]]
+         for i in range(len(energies))],
+    )  # fmt: skip
+    kind = {d.frontier.kind for _, _, d in have if d.frontier is not None}
+    name = "Fermi level" if kind == {"fermi"} else "HOMO" if kind == {"homo"} else "frontier"
+    plots.dos_plot(out / "dos.png", energies, curves, width, name)
+    return ["dos.png", "dos.csv"]

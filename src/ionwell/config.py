@@ -332,24 +332,49 @@ class RemoteConfig(_Model):
     timeout: float = Field(30.0, gt=0.0, description="seconds for connecting and each command")
 
 
+class BulkReference(_Model):
+    """The guest's bulk crystal, built with ``ase.build.bulk`` and computed with the campaign's
+    engine; μ is its energy per atom. ``crystal`` and ``a`` default to ASE's reference state of
+    the element (Li: bcc, a = 3.49 Å); ``repeat`` makes a supercell for Γ-point engines."""
+
+    crystal: str | None = Field(None, description="crystal structure, e.g. bcc, fcc, hcp")
+    a: float | None = Field(None, gt=0.0, description="lattice constant, Å")
+    c: float | None = Field(None, gt=0.0, description="second lattice constant (hcp), Å")
+    cubic: bool = Field(False, description="conventional cubic cell instead of the primitive")
+    repeat: tuple[int, int, int] = Field((1, 1, 1), description="supercell repetitions")
+
+    @field_validator("repeat")
+    @classmethod
+    def _positive(cls, v: tuple[int, int, int]) -> tuple[int, int, int]:
+        if min(v) < 1:
+            raise ValueError("expected three positive integers")
+        return v
+
+
 class GuestReference(_Model):
     """The guest's chemical potential μ (eV per guest), with where it comes from.
 
-    Either ``value`` (eV, e.g. the bulk metal's energy per atom from the same engine computed
-    elsewhere), or ``cohesive_energy`` (eV per atom, positive): μ is then the isolated guest
-    atom's energy computed with the campaign's engine minus that cohesive energy.
+    Exactly one of: ``value`` (eV, e.g. the bulk metal's energy per atom from the same engine
+    computed elsewhere); ``cohesive_energy`` (eV per atom, positive: μ is the isolated guest
+    atom's energy computed with the campaign's engine minus that cohesive energy); ``bulk`` (the
+    bulk metal computed with the campaign's engine, which must then handle periodic cells).
     """
 
     value: float | None = Field(None, description="μ of the guest, eV per guest")
     cohesive_energy: float | None = Field(
         None, gt=0.0, description="cohesive energy of the guest's bulk, eV per atom"
     )
+    bulk: BulkReference | None = Field(None, description="bulk metal computed with the engine")
     source: str = Field("", description="where the value or the cohesive energy comes from")
 
     @model_validator(mode="after")
     def _one_way(self) -> GuestReference:
-        if (self.value is None) == (self.cohesive_energy is None):
-            raise ValueError("give exactly one of 'value' or 'cohesive_energy'")
+        given = [k for k in ("value", "cohesive_energy", "bulk") if getattr(self, k) is not None]
+        if len(given) != 1:
+            raise ValueError(
+                "give exactly one of 'value', 'cohesive_energy' or 'bulk'"
+                + (f" (got {', '.join(given)})" if given else "")
+            )
         return self
 
 
@@ -360,6 +385,10 @@ class AnalysisConfig(_Model):
         None, description="the guest's chemical potential (needed for E_f, hull and voltage)"
     )
     valence: int = Field(1, ge=1, le=4, description="charge z the guest gives up (voltage)")
+    rim_width: float = Field(
+        3.0, gt=0.0, description="guests and host atoms this close to a particle's edge are rim, Å"
+    )
+    dos_width: float = Field(0.2, gt=0.0, description="Gaussian broadening of the DOS, eV")
 
 
 class StopConfig(_Model):
@@ -397,6 +426,17 @@ class Campaign(_Model):
     resources: ResourcesConfig = ResourcesConfig()
     remote: RemoteConfig | None = None
     analysis: AnalysisConfig = AnalysisConfig()
+
+    @model_validator(mode="after")
+    def _periodic_reference(self) -> Campaign:
+        ref = self.analysis.reference
+        if ref is not None and ref.bulk is not None and self.engine.kind in ("pyscf", "tblite"):
+            raise ValueError(
+                f"analysis.reference.bulk: the {self.engine.kind} engine computes finite "
+                "clusters, not a periodic bulk metal; use an 'ase' or 'command' engine, or "
+                "give 'cohesive_energy' (isolated atom) or 'value'"
+            )
+        return self
 
 
 # ---------------------------------------------------------------------------------------------

@@ -236,8 +236,10 @@ class AseEngine(InProcessEngine):
         fermi = _optional(calc, "get_fermi_level")
 
         t0 = time.perf_counter()
-        grid, model = self._potential(calc, final, workdir, context.step)
-        save_npz(workdir / POTENTIAL, grid)
+        grid, model = None, "exact"
+        if context.potential:
+            grid, model = self._potential(calc, final, workdir, context.step)
+            save_npz(workdir / POTENTIAL, grid)
         t_pot = time.perf_counter() - t0
 
         converged = getattr(calc, "converged", True)
@@ -259,13 +261,13 @@ class AseEngine(InProcessEngine):
             code=f"ase:{cfg.calculator}",
             code_version=_code_version(cfg.calculator),
             wall_time=time.perf_counter() - t_start,
-            potential_file=POTENTIAL,
+            potential_file=POTENTIAL if grid is not None else None,
             potential_model=model,
         )
         diag = {
             "wall_time": result.wall_time,
             "potential_seconds": t_pot,
-            "grid_shape": list(grid.shape),
+            "grid_shape": None if grid is None else list(grid.shape),
             "calculator": cfg.calculator,
         }
         atomic_write(workdir / TIMINGS, json.dumps(diag, indent=2) + "\n")

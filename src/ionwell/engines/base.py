@@ -38,6 +38,7 @@ class ComputeContext(BaseModel):
     spin: int | None = None
     movable: tuple[int, ...] = ()
     previous: Path | None = None
+    potential: bool = True  # False: energy only, no potential map (e.g. a guest reference)
 
 
 class StepResult(BaseModel):
@@ -97,4 +98,4 @@ class Engine(Protocol):
 
     def run(self, workdir: Path) -> None: ...
 
-    def collect(self, workdir: Path) -> tuple[StepResult, Grid]: ...
+    def collect(self, workdir: Path) -> tuple[StepResult, Grid | None]: ...

@@ -324,7 +324,7 @@ class CommandEngine:
             return True, None
         return False, f"{path.name}: no line matching {pattern.regex!r} ({what} not proven)"
 
-    def collect(self, workdir: Path) -> tuple[StepResult, Grid]:
+    def collect(self, workdir: Path) -> tuple[StepResult, Grid | None]:
         """Read the program's outputs (see the module docstring for the errors raised)."""
         from ionwell.volumetric import read_potential
 
@@ -390,8 +390,10 @@ class CommandEngine:
             if spec is not None:
                 levels[key] = self._value(workdir, spec, key.replace("_", " "))
 
-        pot_path = self._one_file(workdir, out.potential.file, "the potential map")
-        grid = read_potential(pot_path, out.potential, final, ctx.step)
+        grid = None
+        if ctx.potential:
+            pot_path = self._one_file(workdir, out.potential.file, "the potential map")
+            grid = read_potential(pot_path, out.potential, final, ctx.step)
 
         result = StepResult(
             energy=energy,

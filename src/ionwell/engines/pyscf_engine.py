@@ -786,16 +786,18 @@ class PyscfEngine(InProcessEngine):
 
         t0 = time.perf_counter()
         timings: dict[str, float] = {}
-        grid = potential_map(
-            mf.mol,
-            ks.dm,
-            final_positions,
-            cfg.potential_grid.spacing,
-            cfg.potential_grid.margin,
-            cfg.potential_method,
-            timings,
-        )
-        save_npz(workdir / POTENTIAL, grid)
+        grid = None
+        if context.potential:
+            grid = potential_map(
+                mf.mol,
+                ks.dm,
+                final_positions,
+                cfg.potential_grid.spacing,
+                cfg.potential_grid.margin,
+                cfg.potential_method,
+                timings,
+            )
+            save_npz(workdir / POTENTIAL, grid)
         t_pot = time.perf_counter() - t0
 
         from pyscf.scf import chkfile
@@ -827,7 +829,7 @@ class PyscfEngine(InProcessEngine):
             code_version=str(pyscf.__version__),
             wall_time=time.perf_counter() - t_start,
             warm_started=warm,
-            potential_file=POTENTIAL,
+            potential_file=POTENTIAL if grid is not None else None,
         )
         diag = {
             "wall_time": result.wall_time,
@@ -839,7 +841,7 @@ class PyscfEngine(InProcessEngine):
             "potential_method": cfg.potential_method,
             "density_fit": cfg.density_fit,
             "grid_level": cfg.grid_level,
-            "grid_shape": list(grid.shape),
+            "grid_shape": None if grid is None else list(grid.shape),
             "solvers": ks.solvers,
             "nao": int(mol.nao_nr()),
             "threads": int(lib.num_threads()),

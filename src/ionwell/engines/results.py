@@ -97,7 +97,7 @@ def write_output(workdir: Path, result: StepResult) -> None:
     atomic_write(Path(workdir) / OUTPUT, result.model_dump_json(indent=2) + "\n")
 
 
-def collect_outputs(workdir: Path, code: str = "engine") -> tuple[StepResult, Grid]:
+def collect_outputs(workdir: Path, code: str = "engine") -> tuple[StepResult, Grid | None]:
     """Read ``output.json`` and the potential map it names (default ``potential.npz``).
 
     ``code`` names the program in the message about a missing ``output.json`` (e.g. 'PySCF').
@@ -138,7 +138,9 @@ def collect_outputs(workdir: Path, code: str = "engine") -> tuple[StepResult, Gr
         raise EngineOutputError(
             f"{out}: {len(result.positions)} positions for {len(result.symbols)} symbols"
         )
-    pot = workdir / (result.potential_file or POTENTIAL)
+    if result.potential_file is None:
+        return result, None  # an energy-only compute (ComputeContext.potential False)
+    pot = workdir / result.potential_file
     if not pot.is_file():
         raise EngineOutputError(f"{pot}: missing (expected the potential map of this step)")
     try:
@@ -174,6 +176,6 @@ class InProcessEngine:
         """None: this engine runs in-process through ``run``."""
         return None
 
-    def collect(self, workdir: Path) -> tuple[StepResult, Grid]:
+    def collect(self, workdir: Path) -> tuple[StepResult, Grid | None]:
         """Read ``output.json`` and ``potential.npz``; EngineOutputError names file + reason."""
         return collect_outputs(workdir, self.code)

@@ -520,15 +520,17 @@ class TbliteEngine(InProcessEngine):
         charges = np.asarray(res.get("charges"), dtype=float)
         dipoles = xtb.atomic_dipoles()
         t0 = time.perf_counter()
-        grid = potential_map(
-            final.positions,
-            final.numbers,
-            charges,
-            dipoles,
-            cfg.potential_grid.spacing,
-            cfg.potential_grid.margin,
-        )
-        save_npz(workdir / POTENTIAL, grid)
+        grid = None
+        if context.potential:
+            grid = potential_map(
+                final.positions,
+                final.numbers,
+                charges,
+                dipoles,
+                cfg.potential_grid.spacing,
+                cfg.potential_grid.margin,
+            )
+            save_npz(workdir / POTENTIAL, grid)
         t_pot = time.perf_counter() - t0
 
         energies, occupations, homo, lumo = _orbitals(res)
@@ -563,7 +565,7 @@ class TbliteEngine(InProcessEngine):
             code_version=version,
             wall_time=time.perf_counter() - t_start,
             warm_started=False,
-            potential_file=POTENTIAL,
+            potential_file=POTENTIAL if grid is not None else None,
             potential_model=potential_model_name(dipoles is not None),
         )
         diag = {
@@ -572,7 +574,7 @@ class TbliteEngine(InProcessEngine):
             "single_points": xtb.evaluations,
             "single_point_seconds": xtb.seconds,
             "potential_seconds": t_pot,
-            "grid_shape": list(grid.shape),
+            "grid_shape": None if grid is None else list(grid.shape),
             "method": cfg.method,
             "threads": cfg.threads,
         }
@@ -589,6 +591,6 @@ class TbliteEngine(InProcessEngine):
             t_pot,
         )
 
-    def collect(self, workdir: Path) -> tuple[StepResult, Grid]:
+    def collect(self, workdir: Path) -> tuple[StepResult, Grid | None]:
         """Read ``output.json`` and ``potential.npz``; EngineOutputError names file + reason."""
         return collect_outputs(workdir, "tblite")
