@@ -79,3 +79,13 @@ rule analysis:
         f"{CDIR}/analysis/analysis.json",
     run:
         analysis.analyse(CDIR)
+
+
+rule report:
+    localrule: CAMPAIGN.resources.light == "local"
+    input:
+        f"{CDIR}/analysis/analysis.json",
+    output:
+        f"{CDIR}/analysis/report.html",
+    run:
+        report.write_report([CDIR], output[0])

@@ -116,3 +116,15 @@ def test_mirror_accepts_a_hash_that_looks_like_a_number(campaign):
     assert sync_mirror(campaign, [rec]) == 1
     (row,) = connect(campaign.database).select()
     assert row.record == "sha256:9512072780438e71"
+
+
+def test_atomic_writes_get_the_usual_file_mode(tmp_path):
+    # a file written atomically is as readable as one made by open(): 0666 minus the umask
+    # (POSIX; mkstemp alone would leave 0600 and hide shared campaign files from the group)
+    from ionwell.campaign import atomic_write_text
+
+    atomic_write_text(tmp_path / "a.txt", "x")
+    (tmp_path / "b.txt").write_text("x")
+    assert (tmp_path / "b.txt").stat().st_mode & 0o777 != 0o600  # the umask here is not 077
+    mode = (tmp_path / "a.txt").stat().st_mode & 0o777
+    assert mode == (tmp_path / "b.txt").stat().st_mode & 0o777

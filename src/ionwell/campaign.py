@@ -98,12 +98,23 @@ def _fsync_dir(path: Path) -> None:
             os.close(fd)
 
 
+def _default_mode() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return 0o666 & ~mask
+
+
+_FILE_MODE = _default_mode()
+
+
 def atomic_write_bytes(path: Path, data: bytes) -> None:
     """Write ``data`` to ``path`` so that readers see either the old file or the whole new one."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        # mkstemp makes the file private (0600); give it the mode a plain open() would
+        os.fchmod(fd, _FILE_MODE)
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()

@@ -4,6 +4,7 @@ ionwell run CONFIG.yaml            run or resume a campaign (drives Snakemake)
 ionwell status campaigns/<name>    table of steps and where the campaign stands
 ionwell place POTENTIAL.cube       one-shot: where would the next guest go?
 ionwell verify campaigns/<name>    check the ledger against the files on disk
+ionwell report CAMPAIGN [...]      one self-contained HTML page (several: compared)
 ionwell engines [check NAME]       engine kinds and definitions; a tiny single point through one
 ionwell schema                     JSON Schema of the campaign config
 """
@@ -119,6 +120,9 @@ def cmd_run(args: argparse.Namespace) -> int:
     st = campaign_status(paths.root)
     print()
     print(format_status(st))
+    report = paths.root / "analysis" / "report.html"
+    if returncode == 0 and report.is_file():
+        print(f"report (tables and plots, open in a browser): {report}")
     if returncode != 0:
         err = describe_error(paths)
         why = err.message if err else "Snakemake failed; see the messages above"
@@ -188,6 +192,14 @@ def cmd_analyse(args: argparse.Namespace) -> int:
             print("  voltage steps / V: " + ", ".join(f"{v:.3f}" for v in summary.voltages))
     if summary.caution:
         print(f"  caution: {summary.caution}")
+    return 0
+
+
+def cmd_report(args: argparse.Namespace) -> int:
+    from ionwell.report import write_report
+
+    out = write_report(args.campaigns, args.output)
+    print(f"report written to {out}")
     return 0
 
 
@@ -291,6 +303,16 @@ def build_parser() -> argparse.ArgumentParser:
     an = sub.add_parser("analyse", help="energetics tables and plots (also while running)")
     an.add_argument("campaign", help="campaign folder")
     an.set_defaults(func=cmd_analyse)
+
+    rep = sub.add_parser("report", help="one self-contained HTML report of campaign(s)")
+    rep.add_argument("campaigns", nargs="+", metavar="CAMPAIGN", help="campaign folder(s)")
+    rep.add_argument(
+        "-o",
+        "--output",
+        default=None,
+        help="HTML file (default: CAMPAIGN/analysis/report.html, or ./report.html for several)",
+    )
+    rep.set_defaults(func=cmd_report)
 
     en = sub.add_parser("engines", help="list engine kinds and definitions; check one")
     en.add_argument("action", nargs="?", choices=["list", "check"], default="list")

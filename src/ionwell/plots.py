@@ -77,6 +77,11 @@ def voltage_plot(path: Path, guest: str, steps, unit: dict[str, int], z: int) ->
     for a, b in zip(steps[:-1], steps[1:], strict=True):
         c = energetics.capacity_mah_per_g(a.x_to, unit, z)
         ax.plot([c, c], [a.voltage, b.voltage], color="tab:blue", lw=1, ls=":")
+    if steps:
+        v = [s.voltage for s in steps]
+        if max(v) - min(v) < 0.5:  # a flat profile: show it in a window of ±0.5 V, not ±0.05
+            mid = 0.5 * (max(v) + min(v))
+            ax.set_ylim(mid - 0.5, mid + 0.5)
     ax.set_xlabel(f"capacity / mAh g$^{{-1}}$ of {formula(unit)}")
     ax.set_ylabel(f"voltage vs {guest}/{guest}$^{{{z}+}}$ / V" if z > 1 else
                   f"voltage vs {guest}/{guest}$^+$ / V")  # fmt: skip
