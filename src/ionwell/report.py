@@ -84,7 +84,7 @@ MAX_ROWS = 400
 
 MODEL_NOTE = (
     "Energies, formation energies and voltages in this report are results of the configured "
-    "electronic-structure model on a small model host. They are not measurements and not "
+    "electronic-structure method on the modelled structures. They are not measurements and not "
     "safety data for real cells."
 )
 
