@@ -76,3 +76,27 @@ def test_schema_is_json_schema():
     assert schema["title"] == "Campaign"
     assert "host" in schema["required"]
     assert Campaign.model_json_schema()["additionalProperties"] is False
+
+
+def test_shipped_schema_is_current():
+    # config/campaign.schema.json is what editors validate against; `make schema` rewrites it
+    from pathlib import Path
+
+    shipped = Path(__file__).parents[1] / "config" / "campaign.schema.json"
+    assert json.loads(shipped.read_text()) == json.loads(campaign_schema()), (
+        "config/campaign.schema.json is stale: run `make schema`"
+    )
+
+
+def test_shipped_configs_validate_against_the_schema():
+    # the example campaigns validate against the exported JSON Schema (jsonschema, a reference
+    # implementation of the standard) as well as against the pydantic models
+    from pathlib import Path
+
+    jsonschema = pytest.importorskip("jsonschema")
+    import yaml
+
+    root = Path(__file__).parents[1] / "config"
+    schema = json.loads((root / "campaign.schema.json").read_text())
+    for f in sorted(root.glob("*.yaml")):
+        jsonschema.validate(yaml.safe_load(f.read_text()), schema)

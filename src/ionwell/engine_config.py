@@ -323,7 +323,6 @@ class AseEngineConfig(_Model):
         description="sign of an array from get_electrostatic_potential(): electron (ASE/GPAW: "
         "potential energy of an electron, eV), potential (felt by a positive charge, V), auto",
     )
-    potential_grid: PotentialGridConfig = PotentialGridConfig()
 
 
 # ---------------------------------------------------------------------------------------------
