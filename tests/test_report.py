@@ -17,6 +17,7 @@ from pathlib import Path
 import matplotlib.image as mpimg
 import pytest
 import yaml
+from test_campaign_run import TINY as CAMPAIGN_RUN_TINY
 
 from ionwell.report import comparison_figures, gather_campaign
 from ionwell.status import campaign_status
@@ -25,25 +26,13 @@ pytestmark = pytest.mark.slow
 
 IONWELL = [sys.executable, "-m", "ionwell.cli"]
 
-# Li atoms into one benzene sheet (LDA/STO-3G, coarse grid), no relaxation, two guests.
+# The campaign test's tiny campaign (Li into one benzene sheet, LDA/STO-3G, coarse grid, with
+# its guest reference), here without relaxation and with two guests.
 TINY = {
+    **CAMPAIGN_RUN_TINY,
     "name": "tiny-deepest",
-    "seed": 3,
-    "host": {"builder": {"kind": "flake", "layers": 1, "shells": 1}},
-    "guest": {"element": "Li", "charge_mode": "cation"},
-    "engine": {
-        "kind": "pyscf",
-        "xc": "lda,vwn",
-        "basis": "sto-3g",
-        "conv_tol": 1e-7,
-        "grid_level": 1,
-        "potential_grid": {"spacing": 0.4, "margin": 3.0},
-    },
-    "placement": {"within": 3.0},
     "relax": {"enabled": False},
     "stop": {"guests": 2, "max_steps": 5},
-    # Li: cohesive energy 1.63 eV/atom (handbook value, from memory); μ = E(Li atom) − 1.63 eV
-    "analysis": {"reference": {"cohesive_energy": 1.63, "source": "Li cohesive energy"}},
 }
 
 # the second campaign draws its sites with Boltzmann weights at a high temperature

@@ -34,7 +34,7 @@ from pydantic import BaseModel
 
 from ionwell import energetics, plots
 from ionwell.campaign import CampaignPaths, atomic_write_text, load_frozen
-from ionwell.diagnostics import diagnose, nearest_summary
+from ionwell.diagnostics import diagnose
 from ionwell.dos import dos_on_grid, frontier_level
 from ionwell.engines.base import StepResult
 from ionwell.errors import IonwellError
@@ -309,10 +309,9 @@ def _step_tables(paths: CampaignPaths, campaign, records, n_host: int, out: Path
 
     site_rows = []
     for d in diags:
-        dmin, dmean = nearest_summary(d.nearest_guest)
         site_rows.append(
             [d.step, d.guests, _fmt(d.rim_guests, "d"), _fmt(d.interior_guests, "d"),
-             _fmt(d.guests_outside, "d"), _fmt(dmin), _fmt(dmean),
+             _fmt(d.guests_outside, "d"), _fmt(d.spacing.min), _fmt(d.spacing.mean),
              " ".join(f"{v:.3f}" for v in d.guest_depths)]
         )  # fmt: skip
     _write_csv(

@@ -18,29 +18,18 @@ from __future__ import annotations
 import logging
 from collections.abc import Sequence
 
-import numpy as np
 from ase import Atoms
 from pydantic import BaseModel
 
 from ionwell import occupancy, staging
 from ionwell.dos import FrontierLevel, frontier_level
 from ionwell.errors import IonwellError
+from ionwell.occupancy import GuestSpacing
+from ionwell.staging import Gallery
 
-__all__ = ["GalleryRow", "StepDiagnostics", "diagnose"]
+__all__ = ["StepDiagnostics", "diagnose"]
 
 log = logging.getLogger("ionwell.diagnostics")
-
-
-class GalleryRow(BaseModel):
-    """One gallery of one step."""
-
-    index: int
-    lower: int
-    upper: int
-    spacing: float  # Å
-    guests: int
-    registry: str | None  # AA, AB, other; None when a layer has no heavy atoms
-    matched_fraction: float | None
 
 
 class StepDiagnostics(BaseModel):
@@ -48,8 +37,9 @@ class StepDiagnostics(BaseModel):
 
     step: int
     guests: int
+    spacing: GuestSpacing  # nearest guest–guest distances, Å
     layers: int | None = None
-    galleries: list[GalleryRow] = []
+    galleries: list[Gallery] = []
     guests_outside: int | None = None
     stage: int | None = None
     staging: str | None = None
@@ -57,7 +47,6 @@ class StepDiagnostics(BaseModel):
     rim_guests: int | None = None
     interior_guests: int | None = None
     guest_depths: list[float] = []  # Å inside the particle's edge, per guest
-    nearest_guest: list[float] = []  # Å, per guest
     charge_scheme: str | None = None
     mean_guest_charge: float | None = None
     host_electrons_gained: float | None = None
@@ -92,7 +81,9 @@ def diagnose(
         )
     host = list(range(n_host))
     guests = list(range(n_host, len(atoms)))
-    out = StepDiagnostics(step=step, guests=len(guests))
+    out = StepDiagnostics(
+        step=step, guests=len(guests), spacing=occupancy.guest_spacing(atoms, guests)
+    )
 
     try:
         rep = staging.layer_report(atoms, host, guests)
@@ -101,18 +92,7 @@ def diagnose(
         log.info("step %d: no layer analysis (%s)", step, err)
     else:
         out.layers = rep.layer_count
-        out.galleries = [
-            GalleryRow(
-                index=g.index,
-                lower=g.lower,
-                upper=g.upper,
-                spacing=g.spacing,
-                guests=g.guests,
-                registry=g.registry,
-                matched_fraction=g.matched_fraction,
-            )
-            for g in rep.galleries
-        ]
+        out.galleries = list(rep.galleries)
         out.guests_outside = rep.guests_outside
         out.stage, out.staging = rep.stage, rep.staging
 
@@ -121,7 +101,6 @@ def diagnose(
         out.rim_guests = split.guests_rim
         out.interior_guests = split.guests_interior
         out.guest_depths = [float(d) for d in split.guest_depth]
-    out.nearest_guest = [float(d) for d in occupancy.nearest_guest_distances(atoms, guests)]
 
     if charges is not None and pristine_charges is not None:
         ct = occupancy.charge_transfer(
@@ -145,11 +124,3 @@ def diagnose(
     ):
         out.frontier_shift = out.frontier.value - pristine_frontier.value
     return out
-
-
-def nearest_summary(distances: Sequence[float]) -> tuple[float | None, float | None]:
-    """Smallest and mean nearest-guest distance (Å); None for fewer than two guests."""
-    if not len(distances):
-        return None, None
-    d = np.asarray(distances, dtype=float)
-    return float(d.min()), float(d.mean())

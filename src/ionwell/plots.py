@@ -168,8 +168,8 @@ def rim_plot(path: Path, diags: Sequence[StepDiagnostics], rim_width: float) -> 
     ax.set_xlabel("step")
     ax.set_ylabel("guests")
     ax2 = ax.twinx()
-    dmin = [min(d.nearest_guest) if d.nearest_guest else np.nan for d in rows]
-    dmean = [float(np.mean(d.nearest_guest)) if d.nearest_guest else np.nan for d in rows]
+    dmin = [np.nan if d.spacing.min is None else d.spacing.min for d in rows]
+    dmean = [np.nan if d.spacing.mean is None else d.spacing.mean for d in rows]
     ax2.plot(steps, dmin, "k.-", label="closest guest pair")
     ax2.plot(steps, dmean, "k:", label="mean nearest-guest distance")
     ax2.set_ylabel("guest–guest distance / Å")
