@@ -98,7 +98,7 @@ def test_campaign_through_the_pbs_profile(slurm_cluster, tmp_path):
     assert proc.returncode == 0, proc.stdout[-2000:] + proc.stderr[-3000:]
     recs = _records(tmp_path, "onpbs")
     assert [r.guests for r in recs] == [0, 1, 2]
-    names = [j.get("Name", j.get("JobName", "")) for j in slurm_cluster.submissions("iw-step")]
+    names = [j.get("Name", j.get("JobName", "")) for j in slurm_cluster.submissions("iw-compute")]
     assert len(names) >= 3  # one qsub job per compute step
 
 

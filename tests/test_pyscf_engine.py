@@ -290,7 +290,7 @@ def test_collect_round_trip(tmp_path):
         (None, "output.json: missing"),
         ('{"energy": -1.0, "scf', "output.json: not valid JSON"),
         ("[1, 2]", "output.json: expected a JSON object"),
-        ('{"energy": -1.0}', "output.json: unusable StepResult.*symbols"),
+        ('{"energy": -1.0}', "output.json: unusable StepResult.*code"),
     ],
 )
 def test_collect_bad_output(tmp_path, text, match):

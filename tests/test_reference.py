@@ -9,7 +9,7 @@ from ase.build import bulk
 from ionwell.analysis import guest_reference
 from ionwell.config import parse_campaign
 from ionwell.errors import ConfigError
-from ionwell.loop import prepare_campaign
+from ionwell.workflow.setup import prepare_campaign
 
 HOST = {"builder": {"kind": "flake", "layers": 1, "shells": 1}}
 XTB = {

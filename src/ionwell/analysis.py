@@ -133,19 +133,14 @@ def _bulk_structure(element: str, spec) -> Atoms:
 
 def _energy(campaign, atoms: Atoms, workdir: Path) -> float:
     """Energy (eV) of ``atoms`` with the campaign's engine, no relaxation, no potential map."""
-    from ionwell.engines import get_engine
     from ionwell.engines.base import ComputeContext
+    from ionwell.engines.run import run_engine
 
     variant = campaign.model_copy(
         update={"relax": campaign.relax.model_copy(update={"enabled": False})}
     )
-    engine = get_engine(variant)
-    engine.prepare(atoms, workdir, ComputeContext(step=0, charge=0, potential=False))
-    if engine.argv(workdir, None) is not None:
-        engine.launch(workdir, campaign.launcher)
-    else:
-        engine.run(workdir)
-    result, _ = engine.collect(workdir)
+    ctx = ComputeContext(step=0, charge=0, potential=False)
+    result = run_engine(variant, atoms, workdir, ctx).result
     if not result.scf_converged:
         raise IonwellError(
             f"{workdir}: the SCF of the guest reference ({atoms.get_chemical_formula()}) did "

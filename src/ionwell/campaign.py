@@ -17,15 +17,19 @@ from __future__ import annotations
 
 import contextlib
 import json
+import logging
 import os
 import socket
 import tempfile
 import time
 from dataclasses import dataclass
 from pathlib import Path
+from typing import ClassVar
 
 from ionwell.config import Campaign, config_diff, dump_campaign, load_campaign
 from ionwell.errors import ConfigError, LockError
+
+log = logging.getLogger(__name__)
 
 STEP_DIGITS = 4
 
@@ -162,21 +166,30 @@ def append_event(paths: CampaignPaths, **fields: object) -> None:
 # the frozen config
 
 
+def check_frozen(paths: CampaignPaths, campaign: Campaign) -> bool:
+    """Read-only: True when the campaign is frozen with exactly this config, False when it is
+    not frozen yet. Raises :class:`ConfigError` with the difference when it is frozen with
+    another config."""
+    if not paths.config.exists():
+        return False
+    frozen = load_frozen(paths)
+    if frozen != campaign:
+        raise ConfigError(
+            f"{paths.config}: campaign '{campaign.name}' already exists with another "
+            "configuration; refusing to continue it with a changed config. Give the new "
+            "config another name to start a new campaign. Differences:\n"
+            + config_diff(frozen, campaign)
+        )
+    return True
+
+
 def freeze_or_check(paths: CampaignPaths, campaign: Campaign) -> bool:
     """Freeze ``campaign`` into the folder, or check it equals the frozen one.
 
     Returns True when the config was frozen now (a new campaign). Raises :class:`ConfigError`
     with the difference when the campaign exists with another config.
     """
-    if paths.config.exists():
-        frozen = load_frozen(paths)
-        if frozen != campaign:
-            raise ConfigError(
-                f"{paths.config}: campaign '{campaign.name}' already exists with another "
-                "configuration; refusing to continue it with a changed config. Give the new "
-                "config another name to start a new campaign. Differences:\n"
-                + config_diff(frozen, campaign)
-            )
+    if check_frozen(paths, campaign):
         return False
     atomic_write_text(paths.config, dump_campaign(campaign))
     return True
@@ -219,16 +232,86 @@ class ControllerLock:
 
     A previous controller is *provably gone* when it ran on this host and its pid no longer
     exists with the recorded start time. Its leftover process group (spawned jobs) is then
-    ended before the new controller starts.
+    ended before the new controller starts. A lock file that is empty or unreadable (a
+    controller killed between creating and writing it) is stale once it is older than
+    :attr:`EMPTY_GRACE` seconds; younger, it may belong to a controller starting right now.
+
+    The holder calls :meth:`heartbeat` now and then; :meth:`heartbeat_age` tells anyone who
+    sees the folder (a compute job on another host) how long ago that was.
     """
 
     path: Path
 
+    #: seconds an empty or unreadable lock file is left to the controller that created it
+    EMPTY_GRACE: ClassVar[float] = 5.0
+
     def read(self) -> dict | None:
         try:
-            return json.loads(self.path.read_text())
+            info = json.loads(self.path.read_text())
         except (OSError, ValueError):
             return None
+        return info if isinstance(info, dict) else None
+
+    def heartbeat(self) -> bool:
+        """Touch the lock file (its mtime) when this process holds it. True when touched."""
+        info = self.read()
+        if not info or info.get("pid") != os.getpid() or info.get("host") != socket.gethostname():
+            return False
+        try:
+            os.utime(self.path)
+        except OSError:
+            return False
+        return True
+
+    @staticmethod
+    def heartbeat_age(info_path: Path) -> float | None:
+        """Seconds since the lock file was last written or touched; None when there is none.
+
+        Compares the file's mtime with this machine's clock: on a shared file system, clock
+        skew between hosts adds to (or, clipped at 0, hides) the age.
+        """
+        try:
+            mtime = os.stat(info_path).st_mtime
+        except OSError:
+            return None
+        return max(0.0, time.time() - mtime)
+
+    def _clear_unreadable(self) -> bool:
+        """Remove an empty/unreadable lock file once it is older than the grace period.
+
+        True when removed; False when it changed or vanished meanwhile (try again). Raises
+        :class:`LockError` while it is younger than :attr:`EMPTY_GRACE`.
+        """
+        try:
+            st = self.path.stat()
+        except FileNotFoundError:
+            return False
+        what = "empty" if st.st_size == 0 else "unreadable"
+        age = time.time() - st.st_mtime
+        if age < self.EMPTY_GRACE:
+            raise LockError(
+                f"{self.path}: the lock file is {what} and was written {max(age, 0.0):.1f} s ago: "
+                "a controller may be starting this campaign right now. Try again in a few "
+                f"seconds; an {what} lock older than {self.EMPTY_GRACE:g} s is cleared as stale."
+            )
+        # remove only the file examined, not a lock another controller has just taken
+        try:
+            now = self.path.stat()
+        except FileNotFoundError:
+            return False
+        same = (now.st_ino, now.st_size, now.st_mtime_ns) == (st.st_ino, st.st_size, st.st_mtime_ns)
+        if not same or self.read() is not None:
+            return False
+        with contextlib.suppress(FileNotFoundError):
+            self.path.unlink()
+        log.warning(
+            "%s: cleared an %s lock file last written %.0f s ago (a controller killed while "
+            "taking the lock); taking the lock",
+            self.path,
+            what,
+            age,
+        )
+        return True
 
     def holder_alive(self, info: dict) -> bool | None:
         """True/False for a holder on this host; None when it is on another host."""
@@ -250,17 +333,23 @@ class ControllerLock:
             "since": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
         }
         stale = False
-        for _ in range(2):
+        for _ in range(3):
             try:
                 fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
             except FileExistsError:
-                info = self.read() or {}
+                info = self.read()
+                if info is None:
+                    stale = self._clear_unreadable() or stale
+                    continue
                 alive = self.holder_alive(info)
                 if alive is None:
+                    age = self.heartbeat_age(self.path)
+                    beat = "" if age is None else f", last heartbeat {age:.0f} s ago"
                     raise LockError(
                         f"{self.path}: campaign is held by a controller on host "
-                        f"{info.get('host')!r} (pid {info.get('pid')}, since {info.get('since')}); "
-                        "cannot prove it is gone from here. Remove the lock file by hand once it is."
+                        f"{info.get('host')!r} (pid {info.get('pid')}, since {info.get('since')}"
+                        f"{beat}); cannot prove it is gone from here. Remove the lock file by "
+                        "hand once it is."
                     ) from None
                 if alive:
                     raise LockError(

@@ -23,23 +23,41 @@ Bonds for the fragment count use ``ase.neighborlist.natural_cutoffs`` (covalent 
 atoms with fewer heavy-atom neighbours than the host's most coordinated ones — and a guest is at
 the rim when it is within ``rim_distance`` Å of an edge atom. The rim check runs only on hosts
 that have an interior (heavy atoms farther than ``rim_distance`` from every edge atom).
+
+A step's structure is the host (atoms ``0..n_host-1``, fixed order) followed by the guests.
+What the checks need of the pristine host — its fragment count, edge atoms, whether it has an
+interior, its positions — is computed once by :func:`host_facts`. :func:`step_findings` is told
+which host atoms moved since then (``moved``): with an unchanged host (``moved=()``) it looks
+only at pairs involving a guest (k-d tree around the guests) and takes fragments and edge atoms
+from the facts; when some host atoms moved it rebuilds the host's bond graph and looks at pairs
+involving a guest or a moved atom; with ``moved=None`` (unknown) it checks everything. Close
+host–host pairs of the pristine host are not reported again on the incremental paths (the host
+was accepted at step 0). For the same structure the findings are the same on every path.
 """
 
 from __future__ import annotations
 
+import hashlib
+import itertools
 from collections.abc import Sequence
 from typing import Literal
 
 import numpy as np
 from ase import Atoms
-from ase.geometry import get_distances
+from ase.geometry import find_mic, get_distances
 from ase.neighborlist import neighbor_list
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+from scipy.spatial import cKDTree
+
+from ionwell.config import ChecksConfig
 
 __all__ = [
     "MAX_PAIRS",
     "Finding",
+    "HostFacts",
     "guest_host_findings",
+    "host_digest",
+    "host_facts",
     "BOND_SCALE",
     "close_pair_findings",
     "edge_atoms",
@@ -151,15 +169,88 @@ def close_pair_findings(step: int, atoms: Atoms, min_distance: float = 0.7) -> l
         return []
     i, j, d = neighbor_list("ijd", atoms, min_distance, self_interaction=False)
     pairs = {(int(a), int(b)): float(x) for a, b, x in zip(i, j, d, strict=True) if a < b}
+    return _too_close(step, atoms, [(x, a, b) for (a, b), x in pairs.items()], min_distance)
+
+
+def _too_close(
+    step: int, atoms: Atoms, pairs: list[tuple[float, int, int]], min_distance: float
+) -> list[Finding]:
     return _pair_findings(
         step,
         atoms,
-        [(x, a, b) for (a, b), x in pairs.items()],
+        pairs,
         severity="error",
         code="atoms-too-close",
         what="atoms",
         limit=min_distance,
     )
+
+
+#: Extra reach (Å) of the k-d tree search of :func:`_close_pairs` over its cut-off; candidates
+#: are then judged by the exact distance, so this only guards against rounding.
+_TREE_SLACK = 1e-6
+
+
+def _close_pairs(
+    atoms: Atoms, targets: Sequence[int], cutoff: float
+) -> list[tuple[float, int, int]]:
+    """Pairs ``(d, a, b)``, ``a < b``, nearer than ``cutoff`` Å, with ``a`` or ``b`` in ``targets``.
+
+    Candidates come from a k-d tree of all atoms (wrapped into the cell along periodic axes),
+    queried only around the targets and their periodic images. The distance of a pair is that of
+    its nearest image, computed as ``ase.neighborlist`` computes it (``|x_b - x_a + S·cell|``),
+    so a pair is reported with the same number as by :func:`close_pair_findings`.
+    """
+    t_idx = np.unique(np.asarray(list(targets), dtype=int))
+    if t_idx.size == 0 or len(atoms) < 2:
+        return []
+    pos = atoms.positions
+    pbc = np.asarray(atoms.pbc, dtype=bool)
+    cell = np.asarray(atoms.get_cell(complete=True))
+    if pbc.any():
+        frac = np.linalg.solve(cell.T, pos.T).T
+        wrap = np.where(pbc, np.floor(frac), 0.0).astype(int)
+        wpos = pos - wrap @ cell
+        volume = abs(np.linalg.det(cell))
+        reach = []
+        for k in range(3):
+            if not pbc[k]:
+                reach.append((0,))
+                continue
+            height = volume / np.linalg.norm(np.cross(cell[(k + 1) % 3], cell[(k + 2) % 3]))
+            r = max(1, int(np.ceil(cutoff / height)))
+            reach.append(range(-r, r + 1))
+        shifts = np.array(list(itertools.product(*reach)), dtype=int)
+    else:
+        wrap = np.zeros((len(atoms), 3), dtype=int)
+        wpos = pos
+        shifts = np.zeros((1, 3), dtype=int)
+    queries = (wpos[t_idx][None, :, :] + (shifts @ cell)[:, None, :]).reshape(-1, 3)
+    q_atom = np.tile(t_idx, len(shifts))
+    q_shift = np.repeat(shifts, len(t_idx), axis=0)
+    found = cKDTree(queries).sparse_distance_matrix(
+        cKDTree(wpos), cutoff + _TREE_SLACK, output_type="ndarray"
+    )
+    t, b = q_atom[found["i"]], found["j"].astype(int)
+    s = q_shift[found["i"]]
+    keep = t != b
+    t, b, s = t[keep], b[keep], s[keep]
+    if not len(t):
+        return []
+    # image of b next to t: x_b - x_t + (wrap_t - wrap_b - s)·cell; as (lo, hi) with lo < hi
+    shift = wrap[t] - wrap[b] - s
+    lo, hi = np.minimum(t, b), np.maximum(t, b)
+    shift = np.where((t < b)[:, None], shift, -shift)
+    vec = pos[hi] - pos[lo]
+    if pbc.any():
+        vec = vec + shift.dot(cell)
+    d = np.sqrt(np.sum(vec * vec, axis=1))
+    ok = d < cutoff
+    best: dict[tuple[int, int], float] = {}
+    for x, a, c in zip(d[ok].tolist(), lo[ok].tolist(), hi[ok].tolist(), strict=True):
+        if x < best.get((a, c), np.inf):
+            best[(a, c)] = x
+    return [(x, a, c) for (a, c), x in best.items()]
 
 
 def _distances(atoms: Atoms, a: Sequence[int], b: Sequence[int]) -> np.ndarray:
@@ -181,7 +272,15 @@ def envelope_findings(
     """One ``guest-outside-envelope`` warning per guest farther than ``envelope`` Å from the host."""
     if not len(guest_indices) or not len(host_indices):
         return []
-    nearest = _distances(atoms, guest_indices, host_indices).min(axis=1)
+    dist = _distances(atoms, guest_indices, host_indices)
+    return _envelope(step, atoms, guest_indices, dist, envelope)
+
+
+def _envelope(
+    step: int, atoms: Atoms, guest_indices: Sequence[int], dist: np.ndarray, envelope: float
+) -> list[Finding]:
+    """:func:`envelope_findings` from the guest–host distance matrix ``dist``."""
+    nearest = dist.min(axis=1)
     out = []
     for g, d in zip(guest_indices, nearest, strict=True):
         if d > envelope:
@@ -212,6 +311,18 @@ def guest_host_findings(
     if not len(guest_indices) or not len(host_indices):
         return []
     dist = _distances(atoms, guest_indices, host_indices)
+    return _guest_host(step, atoms, guest_indices, host_indices, dist, guest_host_min)
+
+
+def _guest_host(
+    step: int,
+    atoms: Atoms,
+    guest_indices: Sequence[int],
+    host_indices: Sequence[int],
+    dist: np.ndarray,
+    guest_host_min: float,
+) -> list[Finding]:
+    """:func:`guest_host_findings` from the guest–host distance matrix ``dist``."""
     out = []
     for g, row in zip(guest_indices, dist, strict=True):
         k = int(np.argmin(row))
@@ -249,12 +360,7 @@ def guest_pair_findings(
     )
 
 
-def _check_indices(atoms: Atoms, name: str, indices: Sequence[int]) -> list[int]:
-    out = [int(i) for i in indices]
-    bad = [i for i in out if not 0 <= i < len(atoms)]
-    if bad:
-        raise ValueError(f"{name}: indices {bad} outside 0..{len(atoms) - 1}")
-    return out
+# --- the host: bonded pieces, rim, interior ---------------------------------------------------
 
 
 def _bond_graph(atoms: Atoms, indices: Sequence[int]):
@@ -268,28 +374,58 @@ def _bond_graph(atoms: Atoms, indices: Sequence[int]):
     return sub, i, j, coo_matrix((np.ones(len(i)), (i, j)), shape=(n, n))
 
 
-def host_fragments(atoms: Atoms, host_indices: Sequence[int]) -> int:
-    """Number of bonded pieces the host atoms form (covalent-radius bonds, see BOND_SCALE)."""
+def _pieces(graph) -> int:
     from scipy.sparse.csgraph import connected_components
 
-    if len(host_indices) == 0:
-        return 0
-    *_, graph = _bond_graph(atoms, host_indices)
     return int(connected_components(graph, directed=False)[0])
 
 
-def edge_atoms(atoms: Atoms, host_indices: Sequence[int]) -> list[int]:
-    """Host atoms at the rim: hydrogens, and heavy atoms below the host's top heavy coordination."""
-    hosts = list(host_indices)
-    if not hosts:
-        return []
-    sub, i, j, _ = _bond_graph(atoms, hosts)
+def _edge(hosts: list[int], sub: Atoms, i: np.ndarray, j: np.ndarray) -> list[int]:
     heavy = sub.numbers > 1
     heavy_pairs = heavy[i] & heavy[j]
     coord = np.bincount(i[heavy_pairs], minlength=len(sub))
     top = coord[heavy].max() if heavy.any() else 0
     edge = ~heavy | (heavy & (coord < top))
     return [hosts[k] for k in np.flatnonzero(edge)]
+
+
+def _host_graph_facts(atoms: Atoms, host_indices: Sequence[int]) -> tuple[int, list[int]]:
+    """Bonded pieces and edge atoms of the host atoms, from one bond graph."""
+    hosts = [int(k) for k in host_indices]
+    if not hosts:
+        return 0, []
+    sub, i, j, graph = _bond_graph(atoms, hosts)
+    return _pieces(graph), _edge(hosts, sub, i, j)
+
+
+def host_fragments(atoms: Atoms, host_indices: Sequence[int]) -> int:
+    """Number of bonded pieces the host atoms form (covalent-radius bonds, see BOND_SCALE)."""
+    if len(host_indices) == 0:
+        return 0
+    *_, graph = _bond_graph(atoms, host_indices)
+    return _pieces(graph)
+
+
+def edge_atoms(atoms: Atoms, host_indices: Sequence[int]) -> list[int]:
+    """Host atoms at the rim: hydrogens, and heavy atoms below the host's top heavy coordination."""
+    hosts = [int(k) for k in host_indices]
+    if not hosts:
+        return []
+    sub, i, j, _ = _bond_graph(atoms, hosts)
+    return _edge(hosts, sub, i, j)
+
+
+def _has_interior(
+    atoms: Atoms, host_indices: Sequence[int], edge: Sequence[int], rim_distance: float
+) -> bool:
+    """Whether some heavy non-edge host atom is farther than ``rim_distance`` from every edge atom."""
+    if not len(edge):
+        return False
+    rim = set(edge)
+    heavy = [k for k in host_indices if atoms.numbers[k] > 1 and k not in rim]
+    if not heavy:
+        return False
+    return bool(_distances(atoms, heavy, edge).min(axis=1).max() > rim_distance)
 
 
 def rim_findings(
@@ -305,8 +441,21 @@ def rim_findings(
     edge = edge_atoms(atoms, host_indices)
     if not guests or not edge:
         return []
-    heavy = [k for k in host_indices if atoms.numbers[k] > 1 and k not in set(edge)]
-    if not heavy or _distances(atoms, heavy, edge).min(axis=1).max() <= rim_distance:
+    interior = _has_interior(atoms, host_indices, edge, rim_distance)
+    return _rim(step, atoms, guests, edge, interior, rim_distance, rim_alert)
+
+
+def _rim(
+    step: int,
+    atoms: Atoms,
+    guests: Sequence[int],
+    edge: Sequence[int],
+    interior: bool,
+    rim_distance: float,
+    rim_alert: float,
+) -> list[Finding]:
+    """:func:`rim_findings` from the host's edge atoms and whether it has an interior."""
+    if not len(guests) or not len(edge) or not interior:
         return []  # no interior: a molecule-sized host is all rim
     at_rim = _distances(atoms, guests, edge).min(axis=1) <= rim_distance
     frac = float(at_rim.mean())
@@ -325,33 +474,163 @@ def rim_findings(
     ]
 
 
+# --- host facts, computed once ----------------------------------------------------------------
+
+_Vec3 = tuple[float, float, float]
+
+
+def host_digest(atoms: Atoms, n_host: int | None = None) -> str:
+    """SHA-256 (hex) of elements, positions, cell and periodicity of atoms ``0..n_host-1``.
+
+    All atoms when ``n_host`` is None. Equal digests mean a bit-identical host.
+    """
+    n = len(atoms) if n_host is None else int(n_host)
+    h = hashlib.sha256()
+    h.update(np.ascontiguousarray(atoms.numbers[:n], dtype="<i8").tobytes())
+    h.update(np.ascontiguousarray(atoms.positions[:n], dtype="<f8").tobytes())
+    h.update(np.ascontiguousarray(atoms.cell.array, dtype="<f8").tobytes())
+    h.update(np.asarray(atoms.pbc, dtype=np.uint8).tobytes())
+    return h.hexdigest()
+
+
+class HostFacts(BaseModel):
+    """What the per-step checks need of the pristine host; computed once by :func:`host_facts`.
+
+    The host is atoms ``0..n_host-1`` of every step's structure. ``positions``, ``cell`` and
+    ``pbc`` are the pristine host's, so :meth:`moved` can tell which host atoms a relaxation
+    displaced; ``digest`` is :func:`host_digest` of the pristine host. JSON round trips are exact.
+    """
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    n_host: int = Field(ge=0, description="number of host atoms (indices 0..n_host-1)")
+    host_fragments: int = Field(ge=0, description="bonded pieces of the pristine host")
+    edge_atoms: tuple[int, ...] = Field(description="host atoms at the rim (see edge_atoms)")
+    interior: bool = Field(
+        description="some heavy host atom lies farther than rim_distance from every edge atom "
+        "(the rim check runs only then)"
+    )
+    rim_distance: float = Field(gt=0.0, description="rim width 'interior' was judged with, Å")
+    numbers: tuple[int, ...] = Field(description="atomic numbers of the host atoms")
+    positions: tuple[_Vec3, ...] = Field(description="pristine host positions, Å")
+    cell: tuple[_Vec3, _Vec3, _Vec3] = Field(description="cell vectors, Å")
+    pbc: tuple[bool, bool, bool]
+    digest: str = Field(description="host_digest of the pristine host")
+
+    @model_validator(mode="after")
+    def _consistent(self) -> HostFacts:
+        if len(self.numbers) != self.n_host or len(self.positions) != self.n_host:
+            raise ValueError(f"numbers and positions must have n_host = {self.n_host} entries")
+        if any(not 0 <= k < self.n_host for k in self.edge_atoms):
+            raise ValueError("edge_atoms must be host indices")
+        return self
+
+    def moved(self, atoms: Atoms, tol: float = 1e-6) -> list[int]:
+        """Host atoms of ``atoms`` displaced by more than ``tol`` Å from the pristine host.
+
+        Displacements use the minimum image along periodic axes (an atom wrapped into the cell
+        has not moved). Every host atom counts as moved when the cell or periodicity differ, and
+        an atom with a non-finite position always does. Raises ValueError when atoms
+        ``0..n_host-1`` are not this host's elements.
+        """
+        _check_host(atoms, self.n_host, self)
+        n = self.n_host
+        if n == 0:
+            return []
+        cell = np.asarray(self.cell, dtype=float)
+        if tuple(bool(p) for p in atoms.pbc) != self.pbc or not np.allclose(
+            atoms.cell.array, cell, rtol=0.0, atol=tol
+        ):
+            return list(range(n))
+        delta = atoms.positions[:n] - np.asarray(self.positions, dtype=float).reshape(n, 3)
+        finite = np.isfinite(delta).all(axis=1)
+        dist = np.full(n, np.inf)
+        if any(self.pbc):
+            _, dist[finite] = find_mic(delta[finite], cell, self.pbc)
+        else:
+            dist[finite] = np.linalg.norm(delta[finite], axis=1)
+        return [int(k) for k in np.flatnonzero(dist > tol)]
+
+
+def host_facts(host: Atoms, settings: ChecksConfig) -> HostFacts:
+    """The :class:`HostFacts` of the pristine ``host`` (all its atoms; no guests)."""
+    if not np.isfinite(host.positions).all():
+        raise ValueError("the host has non-finite positions")
+    hosts = list(range(len(host)))
+    pieces, edge = _host_graph_facts(host, hosts)
+    return HostFacts(
+        n_host=len(host),
+        host_fragments=pieces,
+        edge_atoms=tuple(edge),
+        interior=_has_interior(host, hosts, edge, settings.rim_distance),
+        rim_distance=settings.rim_distance,
+        numbers=tuple(int(z) for z in host.numbers),
+        positions=tuple(tuple(p) for p in host.positions.tolist()),
+        cell=tuple(tuple(v) for v in host.cell.array.tolist()),
+        pbc=tuple(bool(p) for p in host.pbc),
+        digest=host_digest(host),
+    )
+
+
+def _check_host(atoms: Atoms, n_host: int, facts: HostFacts) -> int:
+    n_host = int(n_host)
+    if not 0 <= n_host <= len(atoms):
+        raise ValueError(f"n_host = {n_host} outside 0..{len(atoms)} (the structure's size)")
+    if n_host != facts.n_host:
+        raise ValueError(f"n_host = {n_host}, but the host facts are of {facts.n_host} atoms")
+    if not np.array_equal(atoms.numbers[:n_host], np.asarray(facts.numbers, dtype=int)):
+        raise ValueError(f"atoms 0..{n_host - 1} are not the elements of the host facts")
+    return n_host
+
+
+# --- one step ---------------------------------------------------------------------------------
+
+
 def step_findings(
     step: int,
     atoms: Atoms,
-    guest_indices: Sequence[int],
-    host_indices: Sequence[int],
+    n_host: int,
+    settings: ChecksConfig,
+    facts: HostFacts,
     *,
     scf_converged: bool,
     relax_converged: bool | None,
-    min_distance: float = 0.7,
-    guest_host_min: float | None = None,
-    envelope: float | None = None,
-    guest_alert: float | None = None,
-    host_pieces: int | None = None,
-    rim_distance: float = 3.0,
-    rim_alert: float | None = None,
+    envelope: float | None,
+    moved: Sequence[int] | None = None,
 ) -> list[Finding]:
     """All findings for one step's (relaxed) structure, errors first.
 
-    ``guest_host_min``, ``envelope`` and ``guest_alert`` (Å) switch their checks off when None. Distance checks are
-    skipped when positions are not finite (that itself is an error finding). ``host_pieces`` is
-    the fragment count of the pristine host (None: not checked); ``rim_alert`` the fraction of
-    guests at the rim above which a warning is given (None: not checked).
+    ``atoms`` is the host (``0..n_host-1``, the atoms ``facts`` describe) followed by the
+    guests. ``settings`` bound the checks (``guest_host_min``, ``guest_alert``, ``rim_alert`` None
+    and ``connectivity`` False switch theirs off); ``envelope`` (Å, None: off) is passed
+    resolved, since its default comes from the placement settings. ``relax_converged`` None: no
+    relaxation. Distance checks are skipped when positions are not finite (that itself is an
+    error finding).
+
+    ``moved`` names the host atoms that moved since the facts were taken (e.g.
+    :meth:`HostFacts.moved`). None (unknown): every check over the whole structure. Empty: only
+    pairs involving a guest are searched, and the fragment count and rim come from ``facts``.
+    Otherwise pairs involving a guest or a moved atom are searched, and the host's bond graph is
+    rebuilt. Close pairs among unmoved host atoms are then not reported (they are the pristine
+    host's); all else is the same on every path. Raises ValueError when ``n_host`` or
+    ``moved`` do not fit ``atoms`` and ``facts``, or ``facts`` were taken with another
+    ``rim_distance``.
     """
-    guests = _check_indices(atoms, "guest_indices", guest_indices)
-    hosts = _check_indices(atoms, "host_indices", host_indices)
-    if set(guests) & set(hosts):
-        raise ValueError(f"atoms {sorted(set(guests) & set(hosts))} are both guest and host")
+    n_host = _check_host(atoms, n_host, facts)
+    if facts.rim_distance != settings.rim_distance:
+        raise ValueError(
+            f"the host facts were taken with rim_distance {facts.rim_distance:g} Å, the checks "
+            f"use {settings.rim_distance:g} Å"
+        )
+    changed: list[int] | None = None
+    if moved is not None:
+        changed = sorted({int(k) for k in moved})
+        bad = [k for k in changed if not 0 <= k < n_host]
+        if bad:
+            raise ValueError(f"moved: indices {bad} are not host atoms (0..{n_host - 1})")
+    hosts = list(range(n_host))
+    guests = list(range(n_host, len(atoms)))
+
     out = convergence_findings(step, scf_converged=scf_converged, relax_converged=relax_converged)
     bad = np.flatnonzero(~np.isfinite(atoms.positions).all(axis=1))
     if len(bad):
@@ -365,28 +644,46 @@ def step_findings(
                 step=step,
             )
         )
+        return sorted(out, key=lambda f: -_RANK[f.severity])
+
+    if changed is None:
+        out += close_pair_findings(step, atoms, settings.min_distance)
     else:
-        out += close_pair_findings(step, atoms, min_distance)
-        if guest_host_min is not None:
-            out += guest_host_findings(step, atoms, guests, hosts, guest_host_min)
-        if envelope is not None:
-            out += envelope_findings(step, atoms, guests, hosts, envelope)
-        if guest_alert is not None:
-            out += guest_pair_findings(step, atoms, guests, guest_alert)
-        if host_pieces is not None:
-            pieces = host_fragments(atoms, hosts)
-            if pieces > host_pieces:
-                out.append(
-                    Finding(
-                        severity="error",
-                        code="host-fragmented",
-                        message=(
-                            f"the host is in {pieces} bonded pieces, it started with "
-                            f"{host_pieces}: a bond broke"
-                        ),
-                        step=step,
-                    )
-                )
-        if rim_alert is not None:
-            out += rim_findings(step, atoms, guests, hosts, rim_distance, rim_alert)
+        pairs = _close_pairs(atoms, guests + changed, settings.min_distance)
+        out += _too_close(step, atoms, pairs, settings.min_distance)
+    to_host = None
+    if (settings.guest_host_min is not None or envelope is not None) and guests and hosts:
+        to_host = _distances(atoms, guests, hosts)
+    if settings.guest_host_min is not None and to_host is not None:
+        out += _guest_host(step, atoms, guests, hosts, to_host, settings.guest_host_min)
+    if envelope is not None and to_host is not None:
+        out += _envelope(step, atoms, guests, to_host, envelope)
+    if settings.guest_alert is not None:
+        out += guest_pair_findings(step, atoms, guests, settings.guest_alert)
+
+    if not settings.connectivity and settings.rim_alert is None:
+        return sorted(out, key=lambda f: -_RANK[f.severity])
+    if changed is not None and not changed:
+        pieces, edge, interior = facts.host_fragments, list(facts.edge_atoms), facts.interior
+    else:  # the host may have moved: its bonds, rim and interior anew
+        pieces, edge = _host_graph_facts(atoms, hosts)
+        interior = (
+            settings.rim_alert is not None
+            and bool(guests)
+            and _has_interior(atoms, hosts, edge, settings.rim_distance)
+        )
+    if settings.connectivity and pieces > facts.host_fragments:
+        out.append(
+            Finding(
+                severity="error",
+                code="host-fragmented",
+                message=(
+                    f"the host is in {pieces} bonded pieces, it started with "
+                    f"{facts.host_fragments}: a bond broke"
+                ),
+                step=step,
+            )
+        )
+    if settings.rim_alert is not None:
+        out += _rim(step, atoms, guests, edge, interior, settings.rim_distance, settings.rim_alert)
     return sorted(out, key=lambda f: -_RANK[f.severity])

@@ -4,6 +4,7 @@ ionwell run CONFIG.yaml            run or resume a campaign (drives Snakemake)
 ionwell status campaigns/<name>    table of steps and where the campaign stands
 ionwell place POTENTIAL.cube       one-shot: where would the next guest go?
 ionwell verify campaigns/<name>    check the ledger against the files on disk
+ionwell prune campaigns/<name>     remove old steps' maps (digests and wells tables stay)
 ionwell report CAMPAIGN [...]      one self-contained HTML page (several: compared)
 ionwell engines [check NAME]       engine kinds and definitions; a tiny single point through one
 ionwell schema                     JSON Schema of the campaign config
@@ -12,11 +13,15 @@ ionwell schema                     JSON Schema of the campaign config
 from __future__ import annotations
 
 import argparse
+import collections
+import contextlib
 import logging
 import os
+import re
 import signal
 import subprocess
 import sys
+import threading
 from pathlib import Path
 
 import ionwell
@@ -38,7 +43,7 @@ def _profile_dir(name: str) -> Path:
 
 
 def snakemake_argv(config: Path, root: Path, args: argparse.Namespace) -> list[str]:
-    """The Snakemake command line that runs a campaign."""
+    """The Snakemake command line that runs a campaign (one window of steps per invocation)."""
     argv = [
         sys.executable,
         "-m",
@@ -52,6 +57,8 @@ def snakemake_argv(config: Path, root: Path, args: argparse.Namespace) -> list[s
         "--rerun-triggers",
         "mtime",
         "--rerun-incomplete",
+        # light rule bodies run as threads of this process instead of re-parsing the workflow
+        "--force-use-threads",
     ]
     if args.profile:
         argv += ["--profile", str(_profile_dir(args.profile))]
@@ -64,13 +71,27 @@ def snakemake_argv(config: Path, root: Path, args: argparse.Namespace) -> list[s
     return argv
 
 
-def _run_snakemake(argv: list[str], lock) -> int:
+#: ionwell's own log lines (see logsetup); Snakemake's other lines are kept for errors only
+_OWN_LINE = re.compile(r"^\d\d:\d\d:\d\d ionwell \| ")
+
+
+def _run_snakemake(argv: list[str], lock, verbose: bool = False) -> int:
     """Run Snakemake in a process group of its own, recorded in the controller lock.
 
-    On SIGINT/SIGTERM the whole group (Snakemake and the step jobs it spawned) is ended at once;
-    after a SIGKILL of the controller, the next controller ends what is left of the group.
+    ionwell's own progress lines are shown as they come; Snakemake's chatter is kept back and
+    its last lines are shown only when it fails. On SIGINT/SIGTERM the whole group (Snakemake
+    and the step jobs it spawned) is ended at once; after a SIGKILL of the controller, the next
+    controller ends what is left of the group.
     """
-    child = subprocess.Popen(argv, start_new_session=True, preexec_fn=die_with_parent)
+    child = subprocess.Popen(
+        argv,
+        start_new_session=True,
+        preexec_fn=die_with_parent,
+        stdout=None if verbose else subprocess.PIPE,
+        stderr=None if verbose else subprocess.STDOUT,
+        text=True,
+        errors="replace",
+    )
     lock.record_jobs_group(child.pid)
 
     def _stop(signum, _frame):
@@ -87,35 +108,138 @@ def _run_snakemake(argv: list[str], lock) -> int:
         raise KeyboardInterrupt
 
     old = {s: signal.signal(s, _stop) for s in (signal.SIGINT, signal.SIGTERM)}
+    held: collections.deque[str] = collections.deque(maxlen=60)
     try:
-        return child.wait()
+        if child.stdout is not None:
+            for line in child.stdout:
+                if _OWN_LINE.match(line):
+                    sys.stderr.write(line)
+                    sys.stderr.flush()
+                elif line.strip():
+                    held.append(line)
+        rc = child.wait()
     finally:
         for s, h in old.items():
             signal.signal(s, h)
+    if rc != 0 and held:
+        sys.stderr.write("ionwell: Snakemake's last lines:\n" + "".join(held))
+    return rc
+
+
+def _clear_snakemake_locks(root: Path) -> None:
+    """Remove Snakemake's own directory locks left by a killed controller (what ``snakemake
+    --unlock`` does, without parsing the workflow): our controller lock proves nobody else runs."""
+    locks = root / ".snakemake" / "locks"
+    if locks.is_dir():
+        for f in locks.iterdir():
+            with contextlib.suppress(OSError):
+                f.unlink()
+
+
+def _up_to_date(paths) -> bool:
+    """A stopped campaign whose summary, analysis and report are newer than its ledger."""
+    from ionwell.ledger import last_record
+    from ionwell.store.paths import StepPaths
+
+    tip = last_record(paths.ledger)
+    if tip is None or tip.outcome != "stop":
+        return False
+    if StepPaths(paths.step(tip.step + 1)).handover.exists():
+        return False  # extended
+    outs = [paths.summary, paths.root / "analysis" / "analysis.json"]
+    outs.append(paths.root / "analysis" / "report.html")
+    if not all(f.is_file() for f in outs):
+        return False
+    return min(f.stat().st_mtime for f in outs) >= paths.ledger.stat().st_mtime
+
+
+def _drop_stale_markers(paths) -> None:
+    """Remove rule-chain markers of steps past the ledger's last record that claim a record (a
+    ledger cut back by hand, or restored from a copy): Snakemake would otherwise take those
+    steps as done. Markers of an unfinished step (no verdict yet) are kept: the resume continues
+    from them."""
+    import shutil
+
+    from ionwell.ledger import last_record
+    from ionwell.store.paths import StepPaths
+
+    tip = last_record(paths.ledger)
+    first = 0 if tip is None else tip.step + 1
+    if not paths.steps.is_dir():
+        return
+    for d in sorted(paths.steps.iterdir()):
+        if not d.name.isdigit() or int(d.name) < first:
+            continue
+        flow = StepPaths(d).flow
+        claims = any(
+            '"retry"' not in f.read_text(errors="replace") for f in flow.glob("r*.verdict.json")
+        )
+        if claims or int(d.name) > first:
+            shutil.rmtree(flow, ignore_errors=True)
+
+
+def _heartbeat(lock, stop: threading.Event) -> None:
+    from ionwell.workflow.watchdog import HEARTBEAT
+
+    while not stop.wait(HEARTBEAT):
+        with contextlib.suppress(OSError):
+            lock.heartbeat()
 
 
 def cmd_run(args: argparse.Namespace) -> int:
-    from ionwell.campaign import ControllerLock
+    from ionwell.campaign import CampaignPaths, ControllerLock
     from ionwell.config import load_campaign
-    from ionwell.loop import describe_error, prepare_campaign
+    from ionwell.ledger import check_chain, check_inputs, last_record, repair_tail
     from ionwell.status import campaign_status, format_status
+    from ionwell.workflow.extend import amend, finish_amendment, handover, pending_amendment
+    from ionwell.workflow.plan import WINDOW_KEY, resolve_host_path
+    from ionwell.workflow.setup import prepare_campaign
+    from ionwell.workflow.summary import describe_error
 
     config = Path(args.config)
     campaign = load_campaign(config)
     root = Path(args.root)
-    paths = prepare_campaign(campaign, root, config.resolve().parent)
+    base = config.resolve().parent
+    paths = CampaignPaths(root / "campaigns" / campaign.name)
+    if not paths.config.exists():  # a new campaign: frozen before anything else is written
+        prepare_campaign(campaign, root, base)
     lock = ControllerLock(paths.lock)
     stale = lock.acquire()
+    beat = threading.Event()
+    returncode = 0
     try:
-        argv = snakemake_argv(config, root, args)
+        threading.Thread(target=_heartbeat, args=(lock, beat), daemon=True).start()
+        if finish_amendment(paths):
+            print("ionwell: completed an amendment of campaign.yaml that a kill interrupted")
+        resolved = resolve_host_path(campaign, base)
+        sections = pending_amendment(paths, resolved)
+        if sections:
+            diff = amend(paths, resolved, sections)
+            print(f"ionwell: campaign '{campaign.name}': {', '.join(sections)} amended\n{diff}")
+        prepare_campaign(campaign, root, base)
+        torn = repair_tail(paths.ledger)
+        if torn:
+            print(f"ionwell: {torn}")
+        check_chain(paths)
+        check_inputs(paths)
+        extended = handover(paths, resolved)
+        if extended:
+            print(f"ionwell: {extended}")
+        _drop_stale_markers(paths)
         if stale:
             print(f"ionwell: an earlier controller of '{campaign.name}' is gone; resuming")
-            subprocess.run(
-                [*argv, "--unlock"], check=False, capture_output=True, preexec_fn=die_with_parent
-            )
+            _clear_snakemake_locks(root)
         print(f"ionwell: running campaign '{campaign.name}' in {paths.root}", flush=True)
-        returncode = _run_snakemake(argv, lock)
+        argv = snakemake_argv(config, root, args)
+        argv += ["--config", f"{WINDOW_KEY}={args.window}"]
+        while not _up_to_date(paths):
+            before = last_record(paths.ledger)
+            returncode = _run_snakemake(argv, lock, args.verbose)
+            after = last_record(paths.ledger)
+            if returncode != 0 or after is None or after == before:
+                break
     finally:
+        beat.set()
         lock.release()
     st = campaign_status(paths.root)
     print()
@@ -125,15 +249,20 @@ def cmd_run(args: argparse.Namespace) -> int:
         print(f"report (tables and plots, open in a browser): {report}")
     if returncode != 0:
         err = describe_error(paths)
-        why = err.message if err else "Snakemake failed; see the messages above"
+        why = err.message if err else "Snakemake failed; see its last lines above"
         print(f"ionwell: error: campaign '{campaign.name}' did not finish: {why}", file=sys.stderr)
         return 1
     return 0
 
 
 def cmd_status(args: argparse.Namespace) -> int:
+    from ionwell.campaign import CampaignPaths
+    from ionwell.ledger import check_chain
     from ionwell.status import campaign_status, format_status, status_json
 
+    paths = CampaignPaths(Path(args.campaign))
+    if paths.ledger.exists():
+        check_chain(paths)  # a broken chain is refused, naming the record
     st = campaign_status(args.campaign)
     print(status_json(st) if args.json else format_status(st))
     return 0
@@ -173,7 +302,41 @@ def cmd_replay(args: argparse.Namespace) -> int:
         first = differ[0]
         print(f"replay: step {first.step} {first.status}: {first.message}", file=sys.stderr)
         return 1
+    pruned = [s.step for s in steps if s.status == "pruned"]
+    if pruned:
+        print(
+            f"ok: {len(steps) - len(pruned)} of {len(steps)} steps re-derived exactly; "
+            f"{len(pruned)} could not be checked fully (maps pruned): steps "
+            f"{pruned[0]}–{pruned[-1]}"
+        )
+        return 0
     print(f"ok: every recorded decision ({len(steps)} steps) is re-derived exactly")
+    return 0
+
+
+def cmd_prune(args: argparse.Namespace) -> int:
+    from ionwell.campaign import CampaignPaths, ControllerLock
+    from ionwell.store.prune import prune
+
+    paths = CampaignPaths(Path(args.campaign))
+    if not paths.ledger.exists():
+        raise IonwellError(f"{paths.root}: no ledger.jsonl (not a campaign folder, or no step yet)")
+    lock = ControllerLock(paths.lock)
+    if not args.dry_run:
+        lock.acquire()  # not while a controller runs the campaign
+    try:
+        rep = prune(paths.root, keep=args.keep, dry_run=args.dry_run)
+    finally:
+        if not args.dry_run:
+            lock.release()
+    verb = "would remove" if args.dry_run else "removed"
+    if not rep.steps:
+        print(f"nothing to prune: the maps of the newest {args.keep} steps are kept")
+        return 0
+    print(
+        f"{verb} {rep.files} map files of {len(rep.steps)} steps ({rep.steps[0]}–{rep.steps[-1]}), "
+        f"{rep.bytes / 1e6:.1f} MB; digests and wells tables kept (verify and replay say so)"
+    )
     return 0
 
 
@@ -262,6 +425,16 @@ def cmd_engines(args: argparse.Namespace) -> int:
     return 0 if report.ok else 1
 
 
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a whole number ≥ 1, found {text!r}")
+    return value
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="ionwell",
@@ -282,6 +455,12 @@ def build_parser() -> argparse.ArgumentParser:
         help="attempts after a failed step job, continuing from its restart files (default 2, "
         "or the profile's)",
     )
+    r.add_argument(
+        "--window",
+        type=_positive_int,
+        default=20,
+        help="steps per Snakemake invocation (default 20); the DAG never holds more",
+    )
     r.add_argument("-v", "--verbose", action="store_true", help="show Snakemake's own output")
     r.set_defaults(func=cmd_run)
 
@@ -299,6 +478,14 @@ def build_parser() -> argparse.ArgumentParser:
     rp = sub.add_parser("replay", help="re-derive every decision from the stored maps")
     rp.add_argument("campaign", help="campaign folder")
     rp.set_defaults(func=cmd_replay)
+
+    pr = sub.add_parser("prune", help="remove old steps' maps, keeping digests and wells")
+    pr.add_argument("campaign", help="campaign folder")
+    pr.add_argument(
+        "--keep", type=_positive_int, default=5, help="keep the maps of the newest N steps (5)"
+    )
+    pr.add_argument("--dry-run", action="store_true", help="say what would be removed")
+    pr.set_defaults(func=cmd_prune)
 
     an = sub.add_parser("analyse", help="energetics tables and plots (also while running)")
     an.add_argument("campaign", help="campaign folder")

@@ -18,8 +18,8 @@ from pydantic import BaseModel
 
 from ionwell.config import Campaign, parse_campaign
 from ionwell.engine_definitions import list_definitions, resolve_engines
-from ionwell.engines import get_engine
 from ionwell.engines.base import ComputeContext
+from ionwell.engines.run import run_engine
 from ionwell.errors import IonwellError
 
 __all__ = ["CheckReport", "check_engine", "engine_kinds"]
@@ -101,15 +101,10 @@ def check_engine(
             return report
     folder = Path(keep) if keep else Path(tempfile.mkdtemp(prefix="ionwell-check-"))
     folder.mkdir(parents=True, exist_ok=True)
-    engine = get_engine(campaign)
     t0 = time.monotonic()
     try:
-        engine.prepare(_probe(), folder, ComputeContext(step=0, charge=0))
-        if engine.argv(folder, None) is not None:
-            engine.launch(folder, campaign.launcher)
-        else:
-            engine.run(folder)
-        result, grid = engine.collect(folder)
+        done = run_engine(campaign, _probe(), folder, ComputeContext(step=0, charge=0))
+        result, grid = done.result, done.potential
     except IonwellError as err:
         report.message = str(err)
         report.folder = str(folder)

@@ -18,7 +18,7 @@ from pydantic import BaseModel, field_validator
 
 from ionwell.config import EngineConfig, LauncherConfig, RelaxConfig
 from ionwell.engine_config import default_engine_kind
-from ionwell.engines import get_engine
+from ionwell.engines.run import execute
 from ionwell.errors import IonwellError
 
 __all__ = ["JobSpec", "main", "run_folder"]
@@ -43,11 +43,7 @@ def run_folder(folder: Path) -> None:
         spec = JobSpec.model_validate_json((folder / "job.json").read_text())
     except (OSError, ValueError) as err:
         raise IonwellError(f"{folder / 'job.json'}: unusable job description ({err})") from None
-    engine = get_engine(spec)
-    if engine.argv(folder, None) is not None:
-        engine.launch(folder, spec.launcher)
-    else:
-        engine.run(folder)
+    execute(spec, folder)
 
 
 def main(argv: list[str] | None = None) -> int:

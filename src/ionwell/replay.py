@@ -18,6 +18,7 @@ from ionwell import grid, placement
 from ionwell.campaign import CampaignPaths, load_frozen
 from ionwell.errors import IonwellError
 from ionwell.ledger import read_ledger
+from ionwell.store.prune import pruned_files
 
 #: Two chosen sites agree when they are this close (Å).
 SITE_TOLERANCE = 1e-6
@@ -27,7 +28,7 @@ class ReplayStep(BaseModel):
     """The outcome of replaying one step's decision."""
 
     step: int
-    status: str  # "same", "differs", "no decision", "cannot replay"
+    status: str  # "same", "differs", "no decision", "cannot replay", "pruned"
     message: str = ""
 
 
@@ -92,6 +93,26 @@ def _fallback_message(
     return None
 
 
+def _handover_message(paths: CampaignPaths, campaign, prev) -> str | None:
+    """Why the decision that extended a stopped campaign after step ``prev`` is not the one
+    its recorded map and structure give (None: it is)."""
+    from ionwell.store.paths import StepPaths
+    from ionwell.workflow.extend import handover_decision, read_handover
+
+    try:
+        handed = read_handover(StepPaths(paths.step(prev.step + 1)))
+        if handed is None:
+            return "the campaign went on after a stop without a handover decision"
+        again = handover_decision(paths, campaign, prev)
+    except (OSError, ValueError, IonwellError) as err:
+        return f"cannot re-derive the handover decision: {err}"
+    want = np.array([s.position for s in handed.chosen]).reshape(-1, 3)
+    got = np.array([s.position for s in again.chosen]).reshape(-1, 3)
+    if want.shape != got.shape or (want.size and np.abs(want - got).max() > SITE_TOLERANCE):
+        return f"handover sites {np.round(want, 4).tolist()} Å, replay gives {np.round(got, 4).tolist()} Å"
+    return None
+
+
 def replay(root: str | Path) -> list[ReplayStep]:
     """Replay every recorded step of the campaign in ``root``."""
     paths = CampaignPaths(Path(root))
@@ -101,11 +122,27 @@ def replay(root: str | Path) -> list[ReplayStep]:
     n_host, periodic_host = len(host), bool(host.pbc.any())
     out: list[ReplayStep] = []
     for rec in records:
-        if rec.step > 0:
+        if rec.step > 0 and records[rec.step - 1].outcome == "stop":
+            why = _handover_message(paths, campaign, records[rec.step - 1])
+            if why is not None:
+                out.append(ReplayStep(step=rec.step, status="differs", message=why))
+                continue
+        elif rec.step > 0:
             prev = records[rec.step - 1]
             periodic = None
-            if periodic_host:
-                periodic = grid.load_npz(paths.step(prev.step) / "potential.npz")
+            prev_map = paths.step(prev.step) / "potential.npz"
+            if periodic_host and rec.rejected and not prev_map.exists():
+                out.append(
+                    ReplayStep(
+                        step=rec.step,
+                        status="pruned",
+                        message=f"step {prev.step}'s map is pruned: the fallback order of the "
+                        "rejected sites (periodic host) is not re-derived",
+                    )
+                )
+                continue
+            if periodic_host and prev_map.exists():
+                periodic = grid.load_npz(prev_map)
             why = _fallback_message(paths, campaign, prev, rec, n_host, periodic)
             if why is not None:
                 out.append(ReplayStep(step=rec.step, status="differs", message=why))
@@ -116,6 +153,15 @@ def replay(root: str | Path) -> list[ReplayStep]:
             )
             continue
         sdir = paths.step(rec.step)
+        if not (sdir / "potential.npz").exists() and "potential.npz" in pruned_files(sdir):
+            out.append(
+                ReplayStep(
+                    step=rec.step,
+                    status="pruned",
+                    message="map pruned (digest and wells table kept); decision not re-derived",
+                )
+            )
+            continue
         try:
             pot = grid.load_npz(sdir / "potential.npz")
             atoms = read(sdir / "relaxed.extxyz")

@@ -12,7 +12,7 @@ from pydantic import BaseModel
 
 from ionwell.campaign import CampaignPaths, controller_state, load_frozen
 from ionwell.ledger import read_ledger
-from ionwell.loop import describe_error
+from ionwell.workflow.summary import describe_error
 
 
 class StepRow(BaseModel):

@@ -52,8 +52,13 @@ class StepResult(BaseModel):
     scf_iterations: int | None = None
     relax_converged: bool | None = Field(None, description="None when no relaxation was asked")
     relax_steps: int = 0
-    symbols: list[str]
-    positions: list[list[float]] = Field(description="relaxed positions, Å")
+    symbols: list[str] = Field(
+        default_factory=list, description="empty in a step's result.json (see relaxed.extxyz)"
+    )
+    positions: list[list[float]] = Field(
+        default_factory=list,
+        description="relaxed positions, Å; empty in a step's result.json (see relaxed.extxyz)",
+    )
     cell: list[list[float]] | None = None
     pbc: list[bool] = [False, False, False]
     charge: int = 0

@@ -134,6 +134,8 @@ def collect_outputs(workdir: Path, code: str = "engine") -> tuple[StepResult, Gr
         raise EngineOutputError(f"{out}: energy is {result.energy}; expected a finite number")
     if result.forces is not None and not np.isfinite(np.asarray(result.forces)).all():
         raise EngineOutputError(f"{out}: forces hold non-finite values")
+    if not result.symbols:
+        raise EngineOutputError(f"{out}: no atoms (symbols and positions are empty)")
     if len(result.positions) != len(result.symbols):
         raise EngineOutputError(
             f"{out}: {len(result.positions)} positions for {len(result.symbols)} symbols"

@@ -1,0 +1,63 @@
+# After the loop: summary (trajectory, database mirror), the guest reference, the analysis
+# tables and plots, and the HTML report. The reference is a compute job beside the steps.
+
+from ionwell.workflow import finish as iw_finish
+from ionwell.workflow import summary as iw_summary
+
+
+def iw_summary_input(wildcards):
+    if IW_PLAN.finished:
+        return [f"{IW_CDIR}/ledger.jsonl"]
+    return [f"{IW_CDIR}/ledger.jsonl", iw_walk()[1]]
+
+
+rule summary:
+    localrule: IW_LIGHT_LOCAL
+    input:
+        iw_summary_input,
+    output:
+        f"{IW_CDIR}/summary.json",
+    run:
+        iw_summary.summarize(IW_CDIR)
+
+
+def iw_reference_input(wildcards):
+    return [f"{IW_CDIR}/reference.json"] if IW_CAMPAIGN.analysis.reference is not None else []
+
+
+if IW_CAMPAIGN.analysis.reference is not None:
+
+    rule reference:
+        localrule: IW_CAMPAIGN.analysis.reference.value is not None
+        input:
+            f"{IW_CDIR}/campaign.yaml",
+        output:
+            f"{IW_CDIR}/reference.json",
+        threads: IW_CAMPAIGN.resources.compute.threads
+        resources:
+            runtime=lambda wildcards, attempt: iw_walltime(IW_CAMPAIGN, attempt),
+            walltime_hms=lambda wildcards, attempt: iw_hms(iw_walltime(IW_CAMPAIGN, attempt)),
+            **iw_step_resources(IW_CAMPAIGN),
+        run:
+            iw_finish.reference(IW_CDIR)
+
+
+rule analysis:
+    localrule: IW_LIGHT_LOCAL
+    input:
+        f"{IW_CDIR}/summary.json",
+        iw_reference_input,
+    output:
+        f"{IW_CDIR}/analysis/analysis.json",
+    run:
+        iw_finish.analyse(IW_CDIR)
+
+
+rule report:
+    localrule: IW_LIGHT_LOCAL
+    input:
+        f"{IW_CDIR}/analysis/analysis.json",
+    output:
+        f"{IW_CDIR}/analysis/report.html",
+    run:
+        iw_finish.report(IW_CDIR, output[0])

@@ -1,0 +1,108 @@
+"""One way to run an engine: prepare, start (in-process, through the launcher, or as a remote
+job), collect; an unconverged SCF is retried at the same site with each configured remedy.
+
+Used by the step chain's ``compute`` rule, the guest reference, ``ionwell engines check`` and the
+cluster side of remote mode.
+"""
+
+from __future__ import annotations
+
+import logging
+from pathlib import Path
+
+from ase import Atoms
+from pydantic import BaseModel, ConfigDict
+
+from ionwell.engines import get_engine
+from ionwell.engines.base import ComputeContext, StepResult
+from ionwell.errors import EngineOutputError
+from ionwell.grid import Grid
+
+log = logging.getLogger(__name__)
+
+__all__ = ["Computed", "execute", "run_engine", "scf_variants"]
+
+
+class Computed(BaseModel):
+    """One engine compute, after any SCF remedies.
+
+    ``result``/``potential`` are None when the outputs could not be parsed (``parse_error``
+    says why); the ``collect`` rule then reports the error, and a fixed parser re-reads the
+    same outputs without recomputing.
+    """
+
+    model_config = ConfigDict(arbitrary_types_allowed=True)
+
+    result: StepResult | None
+    potential: Grid | None
+    remedies: list[str]
+    parse_error: str | None = None
+
+
+def scf_variants(campaign) -> list[tuple[str, object]]:
+    """The campaign's engine as configured, then each configured SCF remedy (embedded DFT)."""
+    eng = campaign.engine
+    rem = campaign.remedies
+    out = [("as configured", campaign)]
+    if eng.kind != "pyscf":  # the SCF settings below are the embedded engine's
+        return out
+    for name in rem.scf:
+        if name == "more_cycles":
+            upd = {"max_cycle": max(rem.more_cycles, eng.max_cycle)}
+            what = f"max_cycle {upd['max_cycle']}"
+        elif name == "level_shift":
+            upd = {"level_shift": rem.level_shift}
+            what = f"level shift {rem.level_shift} Ha"
+        else:
+            upd = {"smearing": rem.smearing}
+            what = f"smearing {rem.smearing} eV"
+        out.append((what, campaign.model_copy(update={"engine": eng.model_copy(update=upd)})))
+    return out
+
+
+def execute(campaign, workdir: Path, step: int = 0, relative: str | None = None) -> None:
+    """Start the prepared engine folder ``workdir``: as a remote job when ``campaign.remote``
+    is set (``relative``: the folder inside the campaign), else through the launcher, or
+    in-process."""
+    engine = get_engine(campaign)
+    if getattr(campaign, "remote", None) is not None and relative is not None:
+        from ionwell.remote import execute_remote
+
+        execute_remote(campaign, workdir, relative, step)
+    elif engine.argv(workdir, None) is not None:
+        engine.launch(workdir, campaign.launcher)
+    else:
+        engine.run(workdir)
+
+
+def run_engine(
+    campaign,
+    atoms: Atoms,
+    workdir: Path,
+    context: ComputeContext,
+    relative: str | None = None,
+    tolerate_parse_errors: bool = False,
+) -> Computed:
+    """Compute ``atoms`` in ``workdir``; when the SCF does not converge, retry with each
+    configured remedy. With ``tolerate_parse_errors`` an unreadable output ends the compute
+    with ``parse_error`` set instead of raising."""
+    tried: list[str] = []
+    result: StepResult | None = None
+    pot: Grid | None = None
+    for what, variant in scf_variants(campaign):
+        engine = get_engine(variant)
+        if tried:
+            log.warning("step %04d: SCF not converged; retrying with %s", context.step, what)
+        engine.prepare(atoms, workdir, context)
+        execute(variant, workdir, context.step, relative)
+        try:
+            result, pot = engine.collect(workdir)
+        except EngineOutputError as err:
+            if not tolerate_parse_errors:
+                raise
+            return Computed(result=None, potential=None, remedies=tried[1:], parse_error=str(err))
+        verdict = "converged" if result.scf_converged else "not converged"
+        tried.append(f"SCF retry with {what}: {verdict}" if tried else "first try")
+        if result.scf_converged:
+            break
+    return Computed(result=result, potential=pot, remedies=tried[1:])

@@ -1,0 +1,1 @@
+"""The campaign folder on disk: file names, atomic writes, the ledger, locks."""

@@ -1,0 +1,1 @@
+"""The Python body of each Snakemake rule (one function per rule) and the parse-time plan."""

@@ -1,0 +1,43 @@
+"""Body of rule ``setup`` (and the first thing ``ionwell run`` does): freeze the config and
+write the pristine host. The only place a campaign folder is created."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from ase import Atoms
+from ase.io import write
+
+from ionwell.campaign import CampaignPaths, atomic_publish, freeze_or_check
+from ionwell.config import Campaign
+from ionwell.host import load_host
+from ionwell.workflow.plan import resolve_host_path
+
+__all__ = ["prepare_campaign", "setup"]
+
+
+def _write_atoms(path: Path, atoms: Atoms) -> None:
+    tmp = path.with_name(f".{path.name}.tmp")
+    write(tmp, atoms, format="extxyz")
+    atomic_publish(tmp, path)
+
+
+def prepare_campaign(campaign: Campaign, root: Path, base_dir: Path) -> CampaignPaths:
+    """Resolve paths, freeze the config (or check it is unchanged), write ``host.extxyz``.
+
+    ``root`` is the folder holding ``campaigns/``; ``base_dir`` resolves a relative host file.
+    """
+    campaign = resolve_host_path(campaign, base_dir)
+    paths = CampaignPaths(Path(root) / "campaigns" / campaign.name)
+    # read the host before freezing, so a bad structure file leaves no campaign behind
+    atoms = None if paths.host.exists() else load_host(campaign.host, base_dir)
+    freeze_or_check(paths, campaign)
+    if atoms is not None:
+        _write_atoms(paths.host, atoms)
+    return paths
+
+
+def setup(campaign: Campaign, root: str | Path) -> None:
+    """Body of rule ``setup``: the campaign folder ``root`` (``campaigns/<name>``) with its
+    frozen config and host; host files in the config are already absolute (the plan)."""
+    prepare_campaign(campaign, Path(root).parent.parent, Path.cwd())
