@@ -288,13 +288,46 @@ class MemoryWatch:
 
     def summary(self) -> dict:
         rows = sorted(self.peak.items(), key=lambda kv: -kv[1])
+        roles: dict[str, dict] = {}
+        step_jobs: dict[int, int] = {}
+        for (_pid, name), b in rows:
+            role = _role(name)
+            r = roles.setdefault(role, {"processes": 0, "max_hwm_bytes": 0, "example": name})
+            r["processes"] += 1
+            if b > r["max_hwm_bytes"]:
+                r["max_hwm_bytes"], r["example"] = b, name
+            m = re.search(r"step=(\d+)", name)
+            if role == "snakemake job: step" and m:  # a wrapper shell counts with its job
+                k = int(m.group(1))
+                step_jobs[k] = max(step_jobs.get(k, 0), b)
         return {
             "max_single_hwm_bytes": rows[0][1] if rows else None,
             "max_simultaneous_rss_bytes": self.max_sum_rss,
+            "by_role": roles,
+            # a job process per step (when the workflow starts one): its peak against the step
+            "step_jobs_first_last": (
+                [(k, step_jobs[k]) for k in (min(step_jobs), max(step_jobs))] if step_jobs else None
+            ),
+            "step_job_peak_by_step": {str(k): v for k, v in sorted(step_jobs.items())},
             "processes": [
                 {"pid": pid, "cmd": name, "hwm_bytes": b} for (pid, name), b in rows[:12]
             ],
         }
+
+
+def _role(cmd: str) -> str:
+    """What a process of the tree is, from its command line."""
+    if "snakemake" in cmd:
+        if "--target-jobs step:" in cmd or "--target-jobs 'step:" in cmd:
+            return "snakemake job: step"
+        if "--target-jobs" in cmd:
+            return "snakemake job: other rule"
+        if "--unlock" in cmd:
+            return "snakemake --unlock"
+        return "snakemake main"
+    if "ionwell" in cmd and " run " in f" {cmd} ":
+        return "ionwell run"
+    return "other"
 
 
 # ---------------------------------------------------------------------------------------------
@@ -770,8 +803,11 @@ def print_report(res: dict) -> None:
     print(f"\nmemory: largest process peak (VmHWM) {_mib(mem['max_single_hwm_bytes'])}, "
           f"largest simultaneous RSS sum {_mib(mem['max_simultaneous_rss_bytes'])}, "
           f"getrusage children max {_mib(mem['rusage_children_maxrss_bytes'])}")  # fmt: skip
-    for p in mem["processes"][:4]:
-        print(f"  {_mib(p['hwm_bytes']):>9}  pid {p['pid']}  {p['cmd'][:90]}")
+    for role, r in sorted(mem["by_role"].items(), key=lambda kv: -kv[1]["max_hwm_bytes"]):
+        print(f"  {role:<26} {r['processes']:>5} processes, largest {_mib(r['max_hwm_bytes'])}")
+    if mem["step_jobs_first_last"]:
+        (s0, b0), (s1, b1) = mem["step_jobs_first_last"]
+        print(f"  step job peak: step {s0} {_mib(b0)}, step {s1} {_mib(b1)}")
     print(f"\nintegrity: {json.dumps(res['integrity'])}")
 
 

@@ -1,7 +1,9 @@
 # The step chain: prepare -> compute -> collect -> assess (the checkpoint). A failed check that
 # rejects the step's new sites makes the next round K+1 of the same step; the verdict of the
-# last round says whether step N+1 follows. Only `compute` carries scheduler resources; `assess`
-# appends the ledger and always runs on the controller.
+# last round says whether step N+1 follows. With the screened rule, assess names the candidate
+# wells, one `screen` job computes each (in parallel), and checkpoint `decide` makes the
+# decision. Only `compute` and `screen` carry scheduler resources; `assess` and `decide` append
+# the ledger and always run on the controller.
 
 from ionwell.resources import hms as iw_hms
 from ionwell.resources import step_resources as iw_step_resources
@@ -14,6 +16,7 @@ from ionwell.workflow import setup as iw_setup
 wildcard_constraints:
     step=r"\d{4}",
     round=r"\d+",
+    candidate=r"\d+",
 
 
 IW_LIGHT_LOCAL = IW_CAMPAIGN.resources.light == "local"
@@ -30,7 +33,10 @@ def iw_final_verdict(n):
     r = 0
     while True:
         f = checkpoints.assess.get(step=iw_step_label(n), round=r).output[0]
-        if iw_chain.read_verdict(f).outcome != "retry":
+        outcome = iw_chain.read_verdict(f).outcome
+        if outcome == "screen":  # the screened rule decides after its candidates' jobs
+            return checkpoints.decide.get(step=iw_step_label(n), round=r).output[0]
+        if outcome != "retry":
             return f
         r += 1
 
@@ -114,3 +120,37 @@ checkpoint assess:
         IW_FLOW + ".verdict.json",
     run:
         iw_chain.assess(IW_CDIR, int(wildcards.step), int(wildcards.round))
+
+
+rule screen:
+    input:
+        IW_FLOW + ".verdict.json",
+    output:
+        IW_FLOW + ".screen-{candidate}.json",
+    threads: IW_CAMPAIGN.resources.compute.threads
+    resources:
+        runtime=lambda wildcards, attempt: iw_walltime(IW_CAMPAIGN, attempt),
+        walltime_hms=lambda wildcards, attempt: iw_hms(iw_walltime(IW_CAMPAIGN, attempt)),
+        **iw_step_resources(IW_CAMPAIGN),
+    run:
+        iw_chain.screen(
+            IW_CDIR, int(wildcards.step), int(wildcards.round), int(wildcards.candidate)
+        )
+
+
+def iw_screened(wildcards):
+    """The screen jobs of a round whose verdict named candidate wells."""
+    f = checkpoints.assess.get(step=wildcards.step, round=wildcards.round).output[0]
+    n = len(iw_chain.read_verdict(f).sites)
+    base = f"{IW_CDIR}/steps/{wildcards.step}/flow/r{wildcards.round}"
+    return [f"{base}.screen-{k}.json" for k in range(n)]
+
+
+checkpoint decide:
+    localrule: True
+    input:
+        iw_screened,
+    output:
+        IW_FLOW + ".decided.json",
+    run:
+        iw_chain.decide(IW_CDIR, int(wildcards.step), int(wildcards.round))

@@ -21,6 +21,7 @@ from pathlib import Path
 
 import pytest
 import yaml
+from ase import Atoms
 
 from ionwell.campaign import CampaignPaths
 from ionwell.ledger import read_ledger
@@ -340,3 +341,44 @@ def test_prune_keeps_digests_and_verify_and_replay_say_what_they_checked(tmp_pat
     (paths.step(1) / "pruned.json").unlink()
     v = subprocess.run([*IONWELL, "verify", str(paths.root)], capture_output=True, text=True)
     assert v.returncode == 1 and "steps/0001/potential.npz" in v.stderr
+
+
+def test_screened_rule_computes_each_candidate_as_its_own_job(tmp_path):
+    """rule: screened — assess names the top-k wells, one `screen` job per candidate computes
+    it, checkpoint `decide` takes the lowest energy. Each recorded energy equals the calculator's
+    own single point on the same structure (ASE, directly)."""
+    sys.path.insert(0, str(REPO / "bench"))
+    from analytic_calculator import AnalyticCalculator
+    from ase.io import read
+
+    cfg = _config(
+        tmp_path,
+        placement={**CONFIG["placement"], "rule": "screened", "screen": {"top": 3}},
+        stop={"guests": 3, "max_steps": 3},
+    )
+    proc = _run(cfg, tmp_path, "--cores", "2")
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    paths = CampaignPaths(tmp_path / "campaigns" / "long")
+    recs = read_ledger(paths.ledger)
+    assert [r.guests for r in recs] == [0, 1, 2, 3]
+    params = CONFIG["engine"]["parameters"]
+    for rec in recs[:-1]:
+        flow = paths.step(rec.step) / "flow"
+        assert sorted(p.name for p in flow.glob("r0.screen-*.json")) == [
+            f"r0.screen-{k}.json" for k in range(3)
+        ]
+        relaxed = read(paths.step(rec.step) / "relaxed.extxyz")
+        energies = rec.decision.energies[:3]
+        for site, e in zip(rec.decision.candidates[:3], energies, strict=True):
+            trial = relaxed.copy()
+            trial.calc = None
+            trial += Atoms("Li", positions=[site.position])
+            trial.calc = AnalyticCalculator(**params)
+            # 1e-6 eV: relaxed.extxyz stores positions in text (about 1e-8 Å)
+            assert e == pytest.approx(trial.get_potential_energy(), abs=1e-6)
+        best = min(range(3), key=lambda i: energies[i])
+        assert rec.decision.chosen[0].position == rec.decision.candidates[best].position
+    r = subprocess.run(
+        [*IONWELL, "replay", str(paths.root)], capture_output=True, text=True, env=_env()
+    )
+    assert r.returncode == 0, r.stdout + r.stderr

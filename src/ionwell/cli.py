@@ -172,7 +172,9 @@ def _drop_stale_markers(paths) -> None:
             continue
         flow = StepPaths(d).flow
         claims = any(
-            '"retry"' not in f.read_text(errors="replace") for f in flow.glob("r*.verdict.json")
+            '"continue"' in f.read_text(errors="replace")
+            or '"stop"' in f.read_text(errors="replace")
+            for f in [*flow.glob("r*.verdict.json"), *flow.glob("r*.decided.json")]
         )
         if claims or int(d.name) > first:
             shutil.rmtree(flow, ignore_errors=True)

@@ -130,10 +130,12 @@ class Collected(_Marker):
 class Verdict(_Marker):
     """What ``assess`` decided: the next round, the next step, or the end."""
 
-    outcome: Literal["retry", "continue", "stop"]
+    outcome: Literal["retry", "screen", "continue", "stop"]
     stop_reason: str | None = None
     record: str | None = None
-    sites: list[list[float]] = Field(default_factory=list, description="retry: next sites, Å")
+    sites: list[list[float]] = Field(
+        default_factory=list, description="retry: the next sites; screen: the candidates, Å"
+    )
     rejected: list[list[float]] = Field(default_factory=list, description="retry: struck out")
     reason: str | None = None
 
@@ -531,7 +533,9 @@ def assess(root: str | Path, step: int, round_: int = 0) -> Verdict:
         return _assess(paths, step, round_)
 
 
-def _republish(paths: CampaignPaths, rec: LedgerRecord, round_: int) -> Verdict:
+def _republish(
+    paths: CampaignPaths, rec: LedgerRecord, round_: int, stage: str = "verdict"
+) -> Verdict:
     sp = StepPaths(paths.step(rec.step))
     status = StepStatus(
         step=rec.step, outcome=rec.outcome, stop_reason=rec.stop_reason, record=rec.hash
@@ -541,7 +545,7 @@ def _republish(paths: CampaignPaths, rec: LedgerRecord, round_: int) -> Verdict:
         step=rec.step, round=round_, outcome=rec.outcome, stop_reason=rec.stop_reason,
         record=rec.hash,
     )  # fmt: skip
-    _write_marker(sp.marker(round_, "verdict"), verdict)
+    _write_marker(sp.marker(round_, stage), verdict)
     return verdict
 
 
@@ -555,7 +559,6 @@ def _assess(paths: CampaignPaths, step: int, round_: int) -> Verdict:
     campaign = _campaign(paths)
     sp = StepPaths(paths.step(step))
     prep = _read_marker(sp.marker(round_, "prepared"), Prepared)
-    comp = _read_marker(sp.marker(round_, "computed"), Computed)
     result = StepResult.model_validate_json(sp.result.read_bytes())
     relaxed = read(sp.relaxed)
     relaxed.calc = None
@@ -595,9 +598,40 @@ def _assess(paths: CampaignPaths, step: int, round_: int) -> Verdict:
         (log.error if f.severity == "error" else log.warning)("step %04d: %s", step, f.message)
     units = host_formula_units(host, campaign.host.formula_unit)
     reason = decide_step.check_stop(campaign, findings, step, prep.guests, units)
+    if reason is None and campaign.placement.rule == "screened":
+        sites = _screen_candidates(campaign, sp, relaxed, n_host, step)
+        if sites:  # the candidates' energies are computed by parallel `screen` jobs
+            verdict = Verdict(step=step, round=round_, outcome="screen", sites=sites)
+            _write_marker(sp.marker(round_, "verdict"), verdict)
+            log.info("step %04d: screening the %d deepest wells", step, len(sites))
+            return verdict
+    return _finish(paths, campaign, tip, step, round_, findings, reason, "verdict")
+
+
+def _finish(
+    paths: CampaignPaths,
+    campaign: Campaign,
+    tip: LedgerRecord | None,
+    step: int,
+    round_: int,
+    findings: list[checks.Finding],
+    reason: str | None,
+    stage: str,
+    energy_of: placement.EnergyFunction | None = None,
+) -> Verdict:
+    """The placement decision (unless ``reason`` already stops the campaign), the hand-on
+    structure or STOP, the ledger record and the published status."""
+    sp = StepPaths(paths.step(step))
+    prep = _read_marker(sp.marker(round_, "prepared"), Prepared)
+    comp = _read_marker(sp.marker(round_, "computed"), Computed)
+    result = StepResult.model_validate_json(sp.result.read_bytes())
+    relaxed = read(sp.relaxed)
+    relaxed.calc = None
+    n_host = len(_host(paths))
+    units = host_formula_units(_host(paths), campaign.host.formula_unit)
     decision = None
     if reason is None:
-        decision = _decide(campaign, sp, relaxed, n_host, step, prep.charge)
+        decision = _decide(campaign, sp, relaxed, n_host, step, prep.charge, energy_of)
         atomic_write_json(sp.decision, decision.model_dump(mode="json"))
         reason = decide_step.after_decision(campaign, decision)
         if reason is None:
@@ -646,7 +680,7 @@ def _assess(paths: CampaignPaths, step: int, round_: int) -> Verdict:
     except Exception as err:  # the mirror is derived data; never fail a recorded step
         log.warning("could not update %s: %s", paths.database, err)
     _progress(campaign, rec, units)
-    return _republish(paths, rec, round_)
+    return _republish(paths, rec, round_, stage)
 
 
 def _progress(campaign: Campaign, rec: LedgerRecord, units: float) -> None:
@@ -693,10 +727,13 @@ def _findings(campaign, paths, step, relaxed, host, result) -> list[checks.Findi
     )
 
 
-def _decide(campaign, sp: StepPaths, relaxed, n_host, step, charge) -> placement.Decision:
-    """The placement decision of a step (the same call replay makes)."""
-    energy_of = None
-    if campaign.placement.rule == "screened":
+def _decide(
+    campaign, sp: StepPaths, relaxed, n_host, step, charge, energy_of=None
+) -> placement.Decision:
+    """The placement decision of a step (the same call replay makes). The ``screened`` rule
+    takes its candidates' energies from ``energy_of`` (the step's `screen` jobs), else computes
+    them one after the other here."""
+    if campaign.placement.rule == "screened" and energy_of is None:
         energy_of = _screening_energies(campaign, relaxed, sp, step, charge)
     pot = grid.load_npz(sp.potential)
     return placement.decide(
@@ -749,3 +786,113 @@ def _screening_energies(
         return out
 
     return energy_of
+
+
+# ---------------------------------------------------------------------------------------------
+# the screened rule: candidates computed as parallel jobs, then the decision
+
+
+class Screened(_Marker):
+    """One candidate's single-point energy (eV; None when it failed or did not converge)."""
+
+    candidate: int
+    position: list[float]
+    energy: float | None
+    message: str = ""
+
+
+def _screen_candidates(campaign, sp: StepPaths, relaxed, n_host, step) -> list[list[float]]:
+    """The wells the ``screened`` rule will compute: the same call as the decision, with an
+    energy function that only notes which sites it is asked about."""
+    asked: list[list[float]] = []
+
+    def note(sites: list[placement.Site]) -> list[float | None]:
+        asked.extend(list(map(float, s.position)) for s in sites)
+        return [None] * len(sites)
+
+    pot = grid.load_npz(sp.potential)
+    placement.decide(
+        pot, relaxed, campaign.guest.element, campaign.placement, step=step, seed=campaign.seed,
+        envelope_indices=list(range(n_host)), energy_of=note,
+    )  # fmt: skip
+    return asked
+
+
+def _screen_variant(campaign: Campaign) -> Campaign:
+    screen = campaign.placement.screen
+    engine_cfg = screen.engine if screen.engine is not None else campaign.engine
+    return campaign.model_copy(
+        update={"engine": engine_cfg, "relax": campaign.relax.model_copy(update={"enabled": False})}
+    )
+
+
+def screen(root: str | Path, step: int, round_: int, candidate: int) -> Screened:
+    """Body of rule ``screen``: one candidate site's single point with the screening engine
+    (default: the campaign's), warm-started from the step's own engine folder."""
+    paths = CampaignPaths(Path(root))
+    with _reported(paths, step):
+        campaign = _campaign(paths)
+        sp = StepPaths(paths.step(step))
+        verdict = read_verdict(sp.marker(round_, "verdict"))
+        prep = _read_marker(sp.marker(round_, "prepared"), Prepared)
+        site = verdict.sites[candidate]
+        relaxed = read(sp.relaxed)
+        trial = decide_step.with_guests(relaxed, campaign.guest.element, [site])
+        charge = decide_step.system_charge(campaign, prep.guests + 1)
+        wd = sp.engine / f"screen-{candidate:02d}"
+        wd.mkdir(parents=True, exist_ok=True)
+        ctx = ComputeContext(step=step, charge=charge, previous=sp.engine)
+        energy, message = None, ""
+        try:
+            done = run_engine(_screen_variant(campaign), trial, wd, ctx)
+        except IonwellError as err:
+            message = str(err)
+            log.warning("step %04d: screening candidate %d failed: %s", step, candidate, err)
+        else:
+            if done.result is not None and done.result.scf_converged:
+                energy = done.result.energy
+            else:
+                message = "SCF not converged"
+        log.info(
+            "step %04d: screening candidate %d at (%.3f, %.3f, %.3f): %s",
+            step, candidate, *site,
+            f"E = {energy:.6f} eV" if energy is not None else message,
+        )  # fmt: skip
+        out = Screened(
+            step=step, round=round_, candidate=candidate, position=site, energy=energy,
+            message=message,
+        )  # fmt: skip
+        _write_marker(sp.marker(round_, f"screen-{candidate}"), out)
+        return out
+
+
+def decide(root: str | Path, step: int, round_: int) -> Verdict:
+    """Body of checkpoint ``decide`` (the screened rule): the decision from the candidates'
+    energies, then the record, like ``assess``."""
+    paths = CampaignPaths(Path(root))
+    with _reported(paths, step), _step_lock(paths):
+        tip = last_record(paths.ledger)
+        if tip is not None and tip.step == step:
+            append_event(paths, step=step, event="republished")
+            return _republish(paths, tip, round_, "decided")
+        tip = _tip_for(paths, step)
+        campaign = _campaign(paths)
+        sp = StepPaths(paths.step(step))
+        verdict = read_verdict(sp.marker(round_, "verdict"))
+        known = [
+            _read_marker(sp.marker(round_, f"screen-{k}"), Screened)
+            for k in range(len(verdict.sites))
+        ]
+        findings = [checks.Finding.model_validate(f) for f in json.loads(sp.checks.read_text())]
+
+        def energy_of(sites: list[placement.Site]) -> list[float | None]:
+            out: list[float | None] = []
+            for site in sites:
+                hit = [
+                    k.energy for k in known
+                    if np.linalg.norm(np.subtract(k.position, site.position)) < 1e-9
+                ]  # fmt: skip
+                out.append(hit[0] if hit else None)
+            return out
+
+        return _finish(paths, campaign, tip, step, round_, findings, None, "decided", energy_of)

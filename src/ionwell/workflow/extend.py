@@ -51,8 +51,9 @@ def pending_amendment(paths: CampaignPaths, campaign: Campaign) -> list[str] | N
     if fixed:
         raise ConfigError(
             f"{paths.config}: campaign '{campaign.name}' already exists with another "
-            f"configuration in {', '.join(fixed)}; only {', '.join(AMENDABLE)} may change once a "
-            "campaign started. Give the new config another name to start a new campaign. "
+            f"configuration in {', '.join(fixed)}; refusing to continue it with a changed config "
+            f"(only {', '.join(AMENDABLE)} may change once a campaign started). Give the new "
+            "config another name to start a new campaign. "
             "Differences:\n" + config_diff(frozen, campaign)
         )
     return changed
