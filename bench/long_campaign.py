@@ -33,8 +33,9 @@ puts another ionwell source tree first, e.g. an older checkout for "before" figu
 * disk: bytes of ``steps/`` per step (allocated and apparent), the file kinds with the largest
   totals, and the campaign folder's top-level files;
 * CPU: user + system seconds of the whole run and of each command, from
-  ``getrusage(RUSAGE_CHILDREN)`` (every process reaped below this harness; less sensitive to a
-  busy machine than wall time, but blind to processes that outlive their parent);
+  ``getrusage(RUSAGE_CHILDREN)`` (every process reaped below this harness, which makes itself
+  the subreaper of orphaned descendants so that a killed controller's processes count too;
+  less sensitive to a busy machine than wall time);
 * memory: peak RSS (VmHWM) of the ``ionwell run`` process and of every process below it,
   sampled from ``/proc`` every ``--rss-poll`` s, the largest simultaneous sum of VmRSS, and
   ``getrusage(RUSAGE_CHILDREN)`` of this harness.
@@ -48,6 +49,7 @@ machine; ``--root`` defaults to a fresh folder under the system's temporary dire
 from __future__ import annotations
 
 import argparse
+import ctypes
 import datetime as _dt
 import hashlib
 import json
@@ -215,6 +217,37 @@ def children_cpu() -> float:
     """User + system CPU seconds of every descendant this process (or they) waited for."""
     ru = resource.getrusage(resource.RUSAGE_CHILDREN)
     return ru.ru_utime + ru.ru_stime
+
+
+def become_subreaper() -> bool:
+    """Make this process the reaper of its orphaned descendants (Linux ``PR_SET_CHILD_SUBREAPER``).
+
+    A controller killed with SIGKILL leaves its descendants to be reaped by someone: as the
+    subreaper, this harness reaps them (:func:`reap_orphans`), so their CPU time and peak memory
+    count in ``getrusage(RUSAGE_CHILDREN)``. Nothing else about them changes.
+    """
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        return libc.prctl(36, 1, 0, 0, 0) == 0  # PR_SET_CHILD_SUBREAPER
+    except (OSError, AttributeError):
+        return False
+
+
+def reap_orphans(keep: set[int]) -> int:
+    """Reap exited children that are not ours to wait for (``keep``: live Popen objects)."""
+    reaped = 0
+    while True:
+        try:
+            info = os.waitid(os.P_ALL, 0, os.WEXITED | os.WNOHANG | os.WNOWAIT)
+        except ChildProcessError:
+            return reaped
+        if info is None or info.si_pid in keep:
+            return reaped
+        try:
+            os.waitpid(info.si_pid, 0)
+            reaped += 1
+        except ChildProcessError:
+            return reaped
 
 
 def _proc_table() -> dict[int, int]:
@@ -389,6 +422,7 @@ def run_campaign(args, env, config: Path, root: Path, cdir: Path) -> dict:
                     killed = {"time": time.time(), "target": target, "ledger_at_kill": n}
                     kills.pop(0)
                     break
+            reap_orphans({proc.pid})
             if proc.poll() is not None:
                 break
             if now - last_progress > args.stall:
@@ -397,6 +431,7 @@ def run_campaign(args, env, config: Path, root: Path, cdir: Path) -> dict:
                 break
             time.sleep(args.poll)
         rc = proc.wait()
+        reap_orphans(set())
         t_end = time.time()
         events.poll()
         n = ledger.poll()
@@ -866,6 +901,7 @@ def main(argv: list[str] | None = None) -> int:
     config.write_text(yaml.safe_dump(campaign_config(args), sort_keys=False))
 
     load_start = os.getloadavg()
+    subreaper = become_subreaper()
     watch = run_campaign(args, env, config, root, cdir)
     rows, source = step_times(cdir, watch)
     segs = watch["segments"]
@@ -888,6 +924,7 @@ def main(argv: list[str] | None = None) -> int:
             "time_source": source,
             "host_atoms": _host_atoms(cdir),
             "load_start": load_start,
+            "subreaper": subreaper,
             "load_end": None,
         },
         "run": {

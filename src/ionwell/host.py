@@ -24,6 +24,7 @@ that the mean atomic position is the origin. Atom tags hold the sheet index (0 =
 
 from __future__ import annotations
 
+import hashlib
 import math
 from collections.abc import Mapping, Sequence
 from pathlib import Path
@@ -466,7 +467,25 @@ def _spherical(theta: float, phi: float) -> np.ndarray:
     )
 
 
+#: normals found for point sets seen before (key: sha1 of the points' bytes). The host of a
+#: campaign is the same at every step, so an analysis of N steps searches once, not N times.
+_NORMALS: dict[bytes, np.ndarray] = {}
+
+
 def _search_normal(points: np.ndarray) -> np.ndarray:
+    """:func:`_search_normal_uncached`, remembered for point sets seen before (a pure function
+    of the points: the same bytes give the same normal)."""
+    pts = np.ascontiguousarray(points, dtype=float)
+    key = hashlib.sha1(pts.tobytes() + str(pts.shape).encode()).digest()
+    hit = _NORMALS.get(key)
+    if hit is None:
+        if len(_NORMALS) > 64:
+            _NORMALS.clear()
+        hit = _NORMALS[key] = _search_normal_uncached(pts)
+    return hit.copy()
+
+
+def _search_normal_uncached(points: np.ndarray) -> np.ndarray:
     """Direction along which the heights of ``points`` show the widest empty gap.
 
     Layered atoms leave the interlayer spacing empty along the stacking normal and much smaller
