@@ -382,3 +382,27 @@ def test_screened_rule_computes_each_candidate_as_its_own_job(tmp_path):
         [*IONWELL, "replay", str(paths.root)], capture_output=True, text=True, env=_env()
     )
     assert r.returncode == 0, r.stdout + r.stderr
+
+
+def test_collect_and_assess_rerun_without_recomputing(tmp_path):
+    """An unrecorded step whose compute finished (its marker is there) continues with
+    `collect` — as after a parser fix — and the engine is not run again."""
+    cfg, paths = _short(tmp_path)
+    last = read_ledger(paths.ledger)[-1]
+    _cut_back(paths, last.step)  # the last step is unrecorded again ...
+    flow = paths.step(last.step) / "flow"
+    for stage in ("collected", "verdict"):  # ... with its compute done, its parse not
+        (flow / f"r0.{stage}.json").unlink()
+    engine_out = paths.step(last.step) / "engine" / "output.json"
+    mtime = engine_out.stat().st_mtime_ns
+    events = paths.events.read_text().count('"started"')
+    proc = _run(cfg, tmp_path)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert paths.events.read_text().count('"started"') == events  # no compute started
+    assert engine_out.stat().st_mtime_ns == mtime
+    again = read_ledger(paths.ledger)[-1]
+    assert (again.step, again.energy, again.files["relaxed.extxyz"]) == (
+        last.step,
+        last.energy,
+        last.files["relaxed.extxyz"],
+    )

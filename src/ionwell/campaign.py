@@ -93,7 +93,8 @@ def step_label(n: int) -> str:
 # atomic publication
 
 
-def _fsync_dir(path: Path) -> None:
+def fsync_dir(path: Path) -> None:
+    """fsync a folder (a rename or a new file in it is durable afterwards); errors ignored."""
     with contextlib.suppress(OSError):
         fd = os.open(path, os.O_RDONLY)
         try:
@@ -128,7 +129,7 @@ def atomic_write_bytes(path: Path, data: bytes) -> None:
         with contextlib.suppress(OSError):
             os.unlink(tmp)
         raise
-    _fsync_dir(path.parent)
+    fsync_dir(path.parent)
 
 
 def atomic_write_text(path: Path, text: str) -> None:
@@ -149,7 +150,7 @@ def atomic_publish(tmp: Path, path: Path) -> None:
     finally:
         os.close(fd)
     os.replace(tmp, path)
-    _fsync_dir(path.parent)
+    fsync_dir(path.parent)
 
 
 def append_event(paths: CampaignPaths, **fields: object) -> None:

@@ -35,7 +35,7 @@ from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
-from ionwell.campaign import CampaignPaths, atomic_write_text, step_label
+from ionwell.campaign import CampaignPaths, atomic_write_text, fsync_dir, step_label
 from ionwell.errors import LedgerError
 from ionwell.placement import Decision
 from ionwell.store.paths import UNRECORDED_DIRS, UNRECORDED_NAMES
@@ -305,15 +305,6 @@ def _tail_records(path: Path, first_step: int) -> list[LedgerRecord]:
 # appending
 
 
-def _fsync_dir(path: Path) -> None:
-    with contextlib.suppress(OSError):
-        fd = os.open(path, os.O_RDONLY)
-        try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-
-
 def _repair_fd(fd: int, path: Path) -> str | None:
     size = _size(fd)
     if size == 0 or os.pread(fd, 1, size - 1) == b"\n":
@@ -424,7 +415,7 @@ def append_record(
     finally:
         os.close(fd)
     if created:
-        _fsync_dir(path.parent)
+        fsync_dir(path.parent)
     return rec
 
 
