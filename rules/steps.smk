@@ -79,6 +79,7 @@ rule setup:
 
 
 rule prepare:
+    retries: 0  # a light body fails the same way again: not retried
     localrule: IW_LIGHT_LOCAL
     input:
         iw_prepare_input,
@@ -103,6 +104,7 @@ rule compute:
 
 
 rule collect:
+    retries: 0  # a light body fails the same way again: not retried
     localrule: IW_LIGHT_LOCAL
     input:
         IW_FLOW + ".computed.json",
@@ -113,6 +115,7 @@ rule collect:
 
 
 checkpoint assess:
+    retries: 0  # a light body fails the same way again: not retried
     localrule: True
     input:
         IW_FLOW + ".collected.json",
@@ -147,6 +150,7 @@ def iw_screened(wildcards):
 
 
 checkpoint decide:
+    retries: 0  # a light body fails the same way again: not retried
     localrule: True
     input:
         iw_screened,

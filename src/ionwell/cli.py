@@ -121,9 +121,13 @@ def _run_snakemake(argv: list[str], lock, verbose: bool = False) -> int:
     finally:
         for s, h in old.items():
             signal.signal(s, h)
-    if rc != 0 and held:
-        sys.stderr.write("ionwell: Snakemake's last lines:\n" + "".join(held))
+    if rc != 0:
+        _LAST_LINES[:] = list(held)
     return rc
+
+
+#: Snakemake's last lines of a failed invocation, shown when ionwell has no message of its own
+_LAST_LINES: list[str] = []
 
 
 def _clear_snakemake_locks(root: Path) -> None:
@@ -251,6 +255,8 @@ def cmd_run(args: argparse.Namespace) -> int:
         print(f"report (tables and plots, open in a browser): {report}")
     if returncode != 0:
         err = describe_error(paths)
+        if err is None and _LAST_LINES:
+            sys.stderr.write("ionwell: Snakemake's last lines:\n" + "".join(_LAST_LINES))
         why = err.message if err else "Snakemake failed; see its last lines above"
         print(f"ionwell: error: campaign '{campaign.name}' did not finish: {why}", file=sys.stderr)
         return 1
