@@ -873,7 +873,12 @@ def main(argv: list[str] | None = None) -> int:
     p.add_argument("--name", default="bench-long", help="campaign name")
     p.add_argument("--shells", type=int, default=4, help="flake shells (4: 480 host atoms)")
     p.add_argument("--layers", type=int, default=4, help="flake layers")
-    p.add_argument("--windows", type=parse_windows, default=parse_windows("5-15,95-105,490-500"))
+    p.add_argument(
+        "--windows",
+        type=parse_windows,
+        default=parse_windows("5-15,95-105,490-500"),
+        help="step windows for the medians, e.g. 5-15,95-105,490-500",
+    )
     p.add_argument(
         "--engine-delay", type=float, default=0.0, help="s of sleep per engine run (slow engine)"
     )
