@@ -406,3 +406,25 @@ def test_collect_and_assess_rerun_without_recomputing(tmp_path):
         last.energy,
         last.files["relaxed.extxyz"],
     )
+
+
+def test_the_workflow_runs_as_a_module_of_another_pipeline(tmp_path):
+    """A user's Snakefile imports ionwell's as a `module` and depends on its summary."""
+    _config(tmp_path, stop={"guests": 2, "max_steps": 2})
+    (tmp_path / "Snakefile").write_text(
+        "import ionwell\n\n"
+        'configfile: "long.yaml"\n\n'
+        "module insertion:\n    snakefile: str(ionwell.snakefile())\n    config: config\n\n"
+        "use rule * from insertion as ins_*\n\n"
+        "rule mine:\n    default_target: True\n"
+        '    input: "campaigns/long/summary.json"\n    output: "done.txt"\n'
+        '    shell: "cp {input} {output}"\n'
+    )
+    proc = subprocess.run(
+        [sys.executable, "-m", "snakemake", "--cores", "2", "--force-use-threads"],
+        cwd=tmp_path, capture_output=True, text=True, env=_env(), timeout=300,
+    )  # fmt: skip
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    recs = read_ledger(CampaignPaths(tmp_path / "campaigns" / "long").ledger)
+    assert [r.guests for r in recs] == [0, 1, 2]
+    assert json.loads((tmp_path / "done.txt").read_text())["guests"] == 2
