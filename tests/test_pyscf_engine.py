@@ -303,6 +303,33 @@ def test_collect_bad_output(tmp_path, text, match):
         PyscfEngine(FAST, NO_RELAX).collect(tmp_path)
 
 
+def test_positions_and_forces_travel_in_binary(tmp_path):
+    """write_output keeps positions and forces out of output.json (float64 .npz beside it);
+    collect gives back exactly the result written (bit for bit: float64 in, float64 out)."""
+    from ionwell.engines.results import ARRAYS, write_output
+
+    res = _write_valid(tmp_path)
+    rng = np.random.default_rng(0)
+    res = res.model_copy(
+        update={
+            "positions": rng.normal(size=(1, 3)).tolist(),
+            "forces": rng.normal(size=(1, 3)).tolist(),
+        }
+    )
+    write_output(tmp_path, res)
+    assert "positions" not in (tmp_path / OUTPUT).read_text().replace('"positions": []', "")
+    got, _ = PyscfEngine(FAST, NO_RELAX).collect(tmp_path)
+    assert got == res
+    np.save(tmp_path / "x.npy", np.zeros(1))  # unrelated file: ignored
+    with open(tmp_path / ARRAYS, "wb") as fh:
+        np.savez(fh, positions=np.zeros((2, 3)))
+    with pytest.raises(EngineOutputError, match=r"output.npz: 'positions' has shape \(2, 3\)"):
+        PyscfEngine(FAST, NO_RELAX).collect(tmp_path)
+    (tmp_path / ARRAYS).unlink()
+    with pytest.raises(EngineOutputError, match="output.npz: missing"):
+        PyscfEngine(FAST, NO_RELAX).collect(tmp_path)
+
+
 def test_collect_nan_energy_and_missing_grid(tmp_path):
     _write_valid(tmp_path)
     data = json.loads((tmp_path / OUTPUT).read_text())

@@ -3,7 +3,8 @@
 =================  =====================================================================
 ``input.extxyz``   structure entering the compute (Å)
 ``context.json``   the :class:`~ionwell.engines.base.ComputeContext`
-``output.json``    every :class:`~ionwell.engines.base.StepResult` field, written last
+``output.npz``     positions (Å) and forces (eV/Å), float64, binary
+``output.json``    every other :class:`~ionwell.engines.base.StepResult` field, written last
 ``potential.npz``  potential map, volts, float32 (:func:`ionwell.grid.save_npz`)
 =================  =====================================================================
 
@@ -23,6 +24,7 @@ import numpy as np
 from ase import Atoms
 from pydantic import ValidationError
 
+from ionwell.campaign import atomic_publish
 from ionwell.campaign import atomic_write_text as atomic_write
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.errors import EngineOutputError, GridError
@@ -33,6 +35,7 @@ log = logging.getLogger("ionwell.engines")
 __all__ = [
     "CONTEXT",
     "INPUT",
+    "ARRAYS",
     "OUTPUT",
     "POTENTIAL",
     "atomic_write",
@@ -45,6 +48,7 @@ __all__ = [
 INPUT = "input.extxyz"
 CONTEXT = "context.json"
 OUTPUT = "output.json"
+ARRAYS = "output.npz"
 POTENTIAL = "potential.npz"
 
 
@@ -65,7 +69,8 @@ def write_inputs(
 
     workdir = Path(workdir)
     workdir.mkdir(parents=True, exist_ok=True)
-    for name in (OUTPUT, POTENTIAL, *stale):
+    # INPUT too: it may be a hard link to the step's recorded input, never to be written in place
+    for name in (INPUT, OUTPUT, ARRAYS, POTENTIAL, *stale):
         (workdir / name).unlink(missing_ok=True)
     if keep_cell:
         a = Atoms(
@@ -93,8 +98,46 @@ def read_inputs(workdir: Path) -> tuple[Atoms, ComputeContext]:
 
 
 def write_output(workdir: Path, result: StepResult) -> None:
-    """Write ``result`` as ``output.json`` atomically (the last file of a run)."""
-    atomic_write(Path(workdir) / OUTPUT, result.model_dump_json(indent=2) + "\n")
+    """Write ``result``: positions and forces as ``output.npz`` (binary), then every other
+    field as ``output.json`` (atomically; the last file of a run)."""
+    workdir = Path(workdir)
+    arrays = {"positions": np.asarray(result.positions, dtype=np.float64).reshape(-1, 3)}
+    if result.forces is not None:
+        arrays["forces"] = np.asarray(result.forces, dtype=np.float64).reshape(-1, 3)
+    tmp = workdir / f".{ARRAYS}.tmp"
+    with open(tmp, "wb") as fh:
+        np.savez(fh, **arrays)
+    atomic_publish(tmp, workdir / ARRAYS)
+    slim = result.model_copy(update={"positions": [], "forces": None})
+    atomic_write(workdir / OUTPUT, slim.model_dump_json(indent=2) + "\n")
+
+
+def _read_arrays(workdir: Path, n_atoms: int) -> dict[str, list]:
+    """Positions and forces from ``output.npz``; EngineOutputError naming the file."""
+    f = workdir / ARRAYS
+    try:
+        with np.load(f, allow_pickle=False) as z:
+            data = {k: np.asarray(z[k], dtype=np.float64) for k in z.files}
+    except FileNotFoundError:
+        raise EngineOutputError(
+            f"{f}: missing (output.json holds no positions; expected them here)"
+        ) from None
+    except (OSError, ValueError) as err:
+        raise EngineOutputError(f"{f}: unreadable ({err})") from None
+    out: dict[str, list] = {}
+    for key in ("positions", "forces"):
+        if key not in data:
+            if key == "positions":
+                raise EngineOutputError(f"{f}: no 'positions' array")
+            continue
+        a = data[key]
+        if a.shape != (n_atoms, 3):
+            raise EngineOutputError(
+                f"{f}: '{key}' has shape {a.shape}; expected ({n_atoms}, 3) for the symbols "
+                "in output.json"
+            )
+        out[key] = a.tolist()
+    return out
 
 
 def collect_outputs(workdir: Path, code: str = "engine") -> tuple[StepResult, Grid | None]:
@@ -130,6 +173,8 @@ def collect_outputs(workdir: Path, code: str = "engine") -> tuple[StepResult, Gr
             f"{'.'.join(str(p) for p in e['loc']) or '(top)'}: {e['msg']}" for e in err.errors()
         )
         raise EngineOutputError(f"{out}: unusable StepResult ({fields})") from None
+    if not result.positions and result.symbols:  # written by write_output: arrays beside it
+        result = result.model_copy(update=_read_arrays(workdir, len(result.symbols)))
     if not math.isfinite(result.energy):
         raise EngineOutputError(f"{out}: energy is {result.energy}; expected a finite number")
     if result.forces is not None and not np.isfinite(np.asarray(result.forces)).all():

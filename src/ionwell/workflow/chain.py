@@ -395,7 +395,11 @@ def _prepare(paths: CampaignPaths, step: int, round_: int) -> Prepared:
     guests = len(atoms) - n_host
     charge = decide_step.system_charge(campaign, guests)
     movable = decide_step.movable_atoms(campaign.relax, len(atoms), range(n_host, len(atoms)))
-    _write_atoms(sp.input, atoms)
+    handed_on = paths.step(tip.step) / "next.extxyz" if tip is not None else None
+    if round_ == 0 and tip is not None and tip.outcome == "continue":
+        _link_or_copy(handed_on, sp.input)  # the previous step's hand-on, verified above
+    else:
+        _write_atoms(sp.input, atoms)
     ctx = _context(paths, step, charge, movable)
     sp.engine.mkdir(parents=True, exist_ok=True)
     get_engine(campaign).prepare(atoms, sp.engine, ctx)
@@ -413,6 +417,29 @@ def _prepare(paths: CampaignPaths, step: int, round_: int) -> Prepared:
     )
     _write_marker(sp.marker(round_, "prepared"), prepared)
     return prepared
+
+
+def _link_or_copy(src: Path, dst: Path) -> None:
+    """``dst`` as a hard link to the recorded, never rewritten ``src`` (a copy across file
+    systems). Recorded files are replaced, never modified in place, so sharing is safe."""
+    dst.unlink(missing_ok=True)
+    try:
+        os.link(src, dst)
+    except OSError:
+        shutil.copyfile(src, dst)
+
+
+def _dedupe(keep: Path, other: Path) -> None:
+    """Store ``other`` as a hard link to ``keep`` when their bytes are the same (an engine's
+    copy of the step's input structure)."""
+    try:
+        same = other.stat().st_size == keep.stat().st_size and sha256_file(other) == sha256_file(
+            keep
+        )
+    except OSError:
+        return
+    if same and not os.path.samefile(keep, other):
+        _link_or_copy(keep, other)
 
 
 def _context(paths: CampaignPaths, step: int, charge: int, movable) -> ComputeContext:
@@ -492,6 +519,7 @@ def _collect(paths: CampaignPaths, step: int, round_: int) -> Collected:
     campaign = _campaign(paths)
     sp = StepPaths(paths.step(step))
     result, pot = get_engine(campaign).collect(sp.engine)
+    _dedupe(sp.input, sp.engine / "input.extxyz")  # the compute is over: inputs are final
     engine_map = sp.engine / "potential.npz"
     sp.potential.unlink(missing_ok=True)
     if engine_map.is_file():  # the engine's own float32 map: link, do not copy
