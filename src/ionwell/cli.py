@@ -433,16 +433,6 @@ def cmd_engines(args: argparse.Namespace) -> int:
     return 0 if report.ok else 1
 
 
-def _positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        value = 0
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"expected a whole number ≥ 1, found {text!r}")
-    return value
-
-
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="ionwell",
@@ -465,7 +455,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     r.add_argument(
         "--window",
-        type=_positive_int,
+        type=cli_place.positive_count,
         default=20,
         help="steps per Snakemake invocation (default 20); the DAG never holds more",
     )
@@ -490,7 +480,10 @@ def build_parser() -> argparse.ArgumentParser:
     pr = sub.add_parser("prune", help="remove old steps' maps, keeping digests and wells")
     pr.add_argument("campaign", help="campaign folder")
     pr.add_argument(
-        "--keep", type=_positive_int, default=5, help="keep the maps of the newest N steps (5)"
+        "--keep",
+        type=cli_place.positive_count,
+        default=5,
+        help="keep the maps of the newest N steps (5)",
     )
     pr.add_argument("--dry-run", action="store_true", help="say what would be removed")
     pr.set_defaults(func=cmd_prune)

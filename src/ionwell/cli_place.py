@@ -76,7 +76,8 @@ def _kelvin(text: str) -> float:
     return value
 
 
-def _count(text: str) -> int:
+def positive_count(text: str) -> int:
+    """argparse type: a whole number ≥ 1 (one clear message otherwise)."""
     try:
         value = int(text)
     except ValueError:
@@ -163,7 +164,7 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
     p.add_argument(
         "--count",
         metavar="N",
-        type=_count,
+        type=positive_count,
         default=1,
         help="how many guests to place, at wells at least --separation apart (default: 1)",
     )
@@ -198,7 +199,7 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
     p.add_argument(
         "--wells",
         metavar="N",
-        type=_count,
+        type=positive_count,
         default=10,
         help="how many wells to list (default: 10)",
     )
