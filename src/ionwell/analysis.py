@@ -40,6 +40,7 @@ from ionwell.engines.base import StepResult
 from ionwell.errors import IonwellError
 from ionwell.host import host_formula_units
 from ionwell.ledger import read_ledger
+from ionwell.store.paths import StepPaths
 
 __all__ = ["AnalysisSummary", "Reference", "analyse", "guest_reference"]
 
@@ -248,8 +249,8 @@ def analyse(root: str | Path) -> AnalysisSummary:
 def _step_result(paths: CampaignPaths, step: int) -> tuple[Atoms, StepResult]:
     folder = paths.step(step)
     try:
-        result = StepResult.model_validate_json((folder / "result.json").read_text())
-        atoms = read(folder / "relaxed.extxyz")
+        result = StepResult.model_validate_json(StepPaths(folder).result.read_text())
+        atoms = read(StepPaths(folder).relaxed)
     except (OSError, ValueError) as err:
         raise IonwellError(f"{folder}: cannot read the step's result ({err})") from None
     return atoms, result

@@ -38,7 +38,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError
 from ionwell.campaign import CampaignPaths, atomic_write_text, fsync_dir, step_label
 from ionwell.errors import LedgerError
 from ionwell.placement import Decision
-from ionwell.store.paths import UNRECORDED_DIRS, UNRECORDED_NAMES
+from ionwell.store.paths import UNRECORDED_DIRS, UNRECORDED_NAMES, StepPaths
 
 log = logging.getLogger(__name__)
 
@@ -847,7 +847,7 @@ def _ledger_size(path: Path) -> int:
 def _mirror_atoms(paths: CampaignPaths, rec: LedgerRecord):
     from ase.io import read
 
-    f = paths.step(rec.step) / "relaxed.extxyz"
+    f = StepPaths(paths.step(rec.step)).relaxed
     if not f.exists():
         log.warning("%s: no row for step %d (%s is missing)", paths.database, rec.step, f)
         return None

@@ -40,6 +40,7 @@ from pydantic import BaseModel
 
 from ionwell.campaign import atomic_write_json
 from ionwell.config import Campaign, RemoteConfig
+from ionwell.engines.results import CONTEXT, INPUT
 from ionwell.errors import IonwellError
 from ionwell.resources import hms, walltime_minutes
 
@@ -427,7 +428,7 @@ def inputs_digest(campaign: Campaign, workdir: Path) -> str:
     re-attached to only when this matches, so an SCF retry or a rejected site in the same
     engine folder is submitted anew rather than served the earlier job's outputs."""
     h = hashlib.sha256()
-    for name in ("input.extxyz", "context.json"):
+    for name in (INPUT, CONTEXT):
         f = Path(workdir) / name
         h.update(name.encode() + b"\0" + (f.read_bytes() if f.is_file() else b"") + b"\0")
     h.update(json.dumps(_job_spec(campaign), sort_keys=True).encode())

@@ -18,6 +18,7 @@ from ionwell import grid, placement
 from ionwell.campaign import CampaignPaths, load_frozen
 from ionwell.errors import IonwellError
 from ionwell.ledger import read_ledger
+from ionwell.store.paths import StepPaths
 from ionwell.store.prune import pruned_files
 
 #: Two chosen sites agree when they are this close (Å).
@@ -81,7 +82,7 @@ def _fallback_message(
         )
         sets.append(np.array([prev.decision.candidates[i].position for i in pick]).reshape(-1, 3))
     try:
-        new = read(paths.step(rec.step) / "input.extxyz").positions[n_host + prev.guests :]
+        new = read(StepPaths(paths.step(rec.step)).input).positions[n_host + prev.guests :]
     except (OSError, ValueError) as err:
         return f"cannot read the step's input structure: {err}"
     want = sets[-1]
@@ -96,7 +97,6 @@ def _fallback_message(
 def _handover_message(paths: CampaignPaths, campaign, prev) -> str | None:
     """Why the decision that extended a stopped campaign after step ``prev`` is not the one
     its recorded map and structure give (None: it is)."""
-    from ionwell.store.paths import StepPaths
     from ionwell.workflow.extend import handover_decision, read_handover
 
     try:
@@ -130,7 +130,7 @@ def replay(root: str | Path) -> list[ReplayStep]:
         elif rec.step > 0:
             prev = records[rec.step - 1]
             periodic = None
-            prev_map = paths.step(prev.step) / "potential.npz"
+            prev_map = StepPaths(paths.step(prev.step)).potential
             if periodic_host and rec.rejected and not prev_map.exists():
                 out.append(
                     ReplayStep(
@@ -152,8 +152,9 @@ def replay(root: str | Path) -> list[ReplayStep]:
                 ReplayStep(step=rec.step, status="no decision", message=rec.stop_reason or "")
             )
             continue
-        sdir = paths.step(rec.step)
-        if not (sdir / "potential.npz").exists() and "potential.npz" in pruned_files(sdir):
+        sp = StepPaths(paths.step(rec.step))
+        sdir = sp.root
+        if not sp.potential.exists() and sp.potential.name in pruned_files(sdir):
             out.append(
                 ReplayStep(
                     step=rec.step,
@@ -163,8 +164,8 @@ def replay(root: str | Path) -> list[ReplayStep]:
             )
             continue
         try:
-            pot = grid.load_npz(sdir / "potential.npz")
-            atoms = read(sdir / "relaxed.extxyz")
+            pot = grid.load_npz(sp.potential)
+            atoms = read(sp.relaxed)
         except (OSError, ValueError, IonwellError) as err:
             out.append(ReplayStep(step=rec.step, status="cannot replay", message=str(err)))
             continue

@@ -38,6 +38,7 @@ from ionwell.campaign import CampaignPaths, atomic_write_text, load_frozen, step
 from ionwell.checks import Finding
 from ionwell.errors import IonwellError
 from ionwell.status import CampaignStatus, campaign_status
+from ionwell.store.paths import StepPaths
 
 __all__ = [
     "CampaignReport",
@@ -229,7 +230,7 @@ def _analysis_files(folder: Path, summary: AnalysisSummary) -> tuple[list[Path],
 def _step_findings(paths: CampaignPaths, steps: Sequence[int]) -> list[StepFindings]:
     out = []
     for step in steps:
-        f = paths.step(step) / "checks.json"
+        f = StepPaths(paths.step(step)).checks
         if not f.is_file():
             out.append(StepFindings(step=step, note=f"no checks.json in steps/{step_label(step)}"))
             continue

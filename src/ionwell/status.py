@@ -12,6 +12,7 @@ from pydantic import BaseModel
 
 from ionwell.campaign import CampaignPaths, controller_state, load_frozen
 from ionwell.ledger import read_ledger
+from ionwell.store.paths import StepPaths
 from ionwell.workflow.summary import describe_error
 
 
@@ -93,7 +94,7 @@ def campaign_status(root: str | Path) -> CampaignStatus:
     model = "exact"
     if records:
         try:
-            res = json.loads((paths.step(records[-1].step) / "result.json").read_text())
+            res = json.loads(StepPaths(paths.step(records[-1].step)).result.read_text())
             model = str(res.get("potential_model", "exact"))
         except (OSError, ValueError):
             pass

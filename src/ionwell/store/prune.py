@@ -52,7 +52,9 @@ def pruned_files(step_dir: Path) -> dict[str, str]:
 
 def _is_map(rel: str) -> bool:
     name = rel.rsplit("/", 1)[-1]
-    return rel == "potential.npz" or (rel.startswith("engine/") and name.endswith(MAP_SUFFIXES))
+    return rel == StepPaths(Path(".")).potential.name or (
+        rel.startswith("engine/") and name.endswith(MAP_SUFFIXES)
+    )
 
 
 def prune(root: str | Path, keep: int = 5, dry_run: bool = False) -> PruneReport:

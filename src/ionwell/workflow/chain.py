@@ -55,6 +55,8 @@ from ionwell.campaign import (
 from ionwell.config import Campaign
 from ionwell.engines import get_engine
 from ionwell.engines.base import ComputeContext, StepResult
+from ionwell.engines.results import INPUT as ENGINE_INPUT
+from ionwell.engines.results import POTENTIAL as ENGINE_MAP
 from ionwell.engines.run import run_engine
 from ionwell.errors import IonwellError, LedgerError
 from ionwell.host import host_formula_units
@@ -376,18 +378,18 @@ def _prepare(paths: CampaignPaths, step: int, round_: int) -> Prepared:
             atoms = host
         elif tip.outcome == "stop":  # extended after its stop rule: the handover's sites
             handed = _previous_decision(paths, tip, step)
-            base = _checked_structure(paths, tip, "relaxed.extxyz")
+            base = _checked_structure(paths, tip, sp.relaxed.name)
             sites = [s.position for s in handed.chosen]
             atoms = decide_step.with_guests(base, campaign.guest.element, sites)
         else:
-            atoms = _checked_structure(paths, tip, "next.extxyz")
+            atoms = _checked_structure(paths, tip, sp.next.name)
         rejected: list[Rejection] = []
     else:
         before = _read_marker(sp.marker(round_ - 1, "prepared"), Prepared)
         verdict = read_verdict(sp.marker(round_ - 1, "verdict"))
         if verdict.outcome != "retry" or tip is None:
             raise LedgerError(f"step {step}: round {round_} follows no rejected site")
-        base = _checked_structure(paths, tip, "relaxed.extxyz")
+        base = _checked_structure(paths, tip, sp.relaxed.name)
         atoms = decide_step.with_guests(base, campaign.guest.element, verdict.sites)
         rejected = before.rejected + [
             Rejection(position=p, reason=verdict.reason or "") for p in verdict.rejected
@@ -395,7 +397,7 @@ def _prepare(paths: CampaignPaths, step: int, round_: int) -> Prepared:
     guests = len(atoms) - n_host
     charge = decide_step.system_charge(campaign, guests)
     movable = decide_step.movable_atoms(campaign.relax, len(atoms), range(n_host, len(atoms)))
-    handed_on = paths.step(tip.step) / "next.extxyz" if tip is not None else None
+    handed_on = StepPaths(paths.step(tip.step)).next if tip is not None else None
     if round_ == 0 and tip is not None and tip.outcome == "continue":
         _link_or_copy(handed_on, sp.input)  # the previous step's hand-on, verified above
     else:
@@ -519,8 +521,8 @@ def _collect(paths: CampaignPaths, step: int, round_: int) -> Collected:
     campaign = _campaign(paths)
     sp = StepPaths(paths.step(step))
     result, pot = get_engine(campaign).collect(sp.engine)
-    _dedupe(sp.input, sp.engine / "input.extxyz")  # the compute is over: inputs are final
-    engine_map = sp.engine / "potential.npz"
+    _dedupe(sp.input, sp.engine / ENGINE_INPUT)  # the compute is over: inputs are final
+    engine_map = sp.engine / ENGINE_MAP
     sp.potential.unlink(missing_ok=True)
     if engine_map.is_file():  # the engine's own float32 map: link, do not copy
         try:
@@ -598,7 +600,7 @@ def _assess(paths: CampaignPaths, step: int, round_: int) -> Verdict:
     if errors and tip is not None:
         periodic = None
         if host.pbc.any() and campaign.remedies.reject_site:
-            periodic = grid.load_npz(paths.step(tip.step) / "potential.npz")
+            periodic = grid.load_npz(StepPaths(paths.step(tip.step)).potential)
         retry = decide_step.after_checks(
             campaign,
             findings,

@@ -101,7 +101,7 @@ def handover_decision(paths: CampaignPaths, campaign: Campaign, rec) -> Decision
     from ionwell.workflow.chain import _decide
 
     sp = StepPaths(paths.step(rec.step))
-    for name in ("potential.npz", "relaxed.extxyz"):
+    for name in (sp.potential.name, sp.relaxed.name):
         f = sp.root / name
         if not f.is_file() or sha256_file(f) != rec.files.get(name):
             raise LedgerError(
