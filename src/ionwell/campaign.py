@@ -142,6 +142,16 @@ def atomic_write_json(path: Path, obj: object) -> None:
     atomic_write_text(path, json.dumps(obj, indent=2, sort_keys=True) + "\n")
 
 
+def atomic_write_extxyz(path: Path, atoms) -> None:
+    """Write one structure (ASE ``Atoms``) or a list of frames as extended XYZ, atomically."""
+    from ase.io import write
+
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.tmp")
+    write(tmp, atoms, format="extxyz")
+    atomic_publish(tmp, path)
+
+
 def atomic_publish(tmp: Path, path: Path) -> None:
     """Flush an already written temporary file and rename it onto ``path``."""
     fd = os.open(tmp, os.O_RDONLY)

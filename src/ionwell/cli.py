@@ -143,13 +143,10 @@ def _clear_snakemake_locks(root: Path) -> None:
 def _up_to_date(paths) -> bool:
     """A stopped campaign whose summary, analysis and report are newer than its ledger."""
     from ionwell.ledger import last_record
-    from ionwell.store.paths import StepPaths
+    from ionwell.workflow.plan import is_stopped
 
-    tip = last_record(paths.ledger)
-    if tip is None or tip.outcome != "stop":
+    if not is_stopped(paths, last_record(paths.ledger)):
         return False
-    if StepPaths(paths.step(tip.step + 1)).handover.exists():
-        return False  # extended
     outs = [paths.summary, paths.root / "analysis" / "analysis.json"]
     outs.append(paths.root / "analysis" / "report.html")
     if not all(f.is_file() for f in outs):
@@ -164,8 +161,16 @@ def _drop_stale_markers(paths) -> None:
     from them."""
     import shutil
 
+    from ionwell.errors import LedgerError
     from ionwell.ledger import last_record
     from ionwell.store.paths import StepPaths
+    from ionwell.workflow.chain import read_verdict
+
+    def claims_record(f: Path) -> bool:
+        try:
+            return read_verdict(f).outcome in ("continue", "stop")
+        except LedgerError:  # not a verdict: claims nothing
+            return False
 
     tip = last_record(paths.ledger)
     first = 0 if tip is None else tip.step + 1
@@ -176,9 +181,7 @@ def _drop_stale_markers(paths) -> None:
             continue
         flow = StepPaths(d).flow
         claims = any(
-            '"continue"' in f.read_text(errors="replace")
-            or '"stop"' in f.read_text(errors="replace")
-            for f in [*flow.glob("r*.verdict.json"), *flow.glob("r*.decided.json")]
+            claims_record(f) for f in [*flow.glob("r*.verdict.json"), *flow.glob("r*.decided.json")]
         )
         if claims or int(d.name) > first:
             shutil.rmtree(flow, ignore_errors=True)

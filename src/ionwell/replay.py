@@ -34,19 +34,8 @@ class ReplayStep(BaseModel):
 
 
 def _recorded_energies(decision: placement.Decision) -> placement.EnergyFunction:
-    known = [
-        (np.asarray(s.position), e)
-        for s, e in zip(decision.candidates, decision.energies or [], strict=False)
-    ]
-
-    def energy_of(sites: list[placement.Site]) -> list[float | None]:
-        out: list[float | None] = []
-        for site in sites:
-            match = [e for p, e in known if np.linalg.norm(p - site.position) < SITE_TOLERANCE]
-            out.append(match[0] if match else None)
-        return out
-
-    return energy_of
+    pairs = zip(decision.candidates, decision.energies or [], strict=False)
+    return placement.known_energies([(s.position, e) for s, e in pairs], SITE_TOLERANCE)
 
 
 def _fallback_message(

@@ -39,7 +39,7 @@ from typing import Literal, TypeVar
 import numpy as np
 from ase import Atoms
 from ase.calculators.singlepoint import SinglePointCalculator
-from ase.io import read, write
+from ase.io import read
 from pydantic import BaseModel, ConfigDict, Field
 
 import ionwell
@@ -48,6 +48,7 @@ from ionwell.campaign import (
     CampaignPaths,
     append_event,
     atomic_publish,
+    atomic_write_extxyz,
     atomic_write_json,
     atomic_write_text,
     load_frozen,
@@ -72,6 +73,7 @@ from ionwell.ledger import (
 )
 from ionwell.science import step as decide_step
 from ionwell.store.paths import StepPaths, step_label
+from ionwell.workflow.plan import is_stopped
 
 log = logging.getLogger(__name__)
 
@@ -86,7 +88,6 @@ __all__ = [
     "collect",
     "compute",
     "prepare",
-    "read_status",
 ]
 
 
@@ -177,10 +178,6 @@ def _read_marker(path: Path, model: type[_M]) -> _M:
         raise LedgerError(f"{path}: unreadable marker of the step chain ({err})") from None
 
 
-def read_status(path: str | Path) -> StepStatus:
-    return StepStatus.model_validate_json(Path(path).read_text())
-
-
 def read_verdict(path: str | Path) -> Verdict:
     """The verdict of an ``assess`` job (the checkpoint's output)."""
     return _read_marker(Path(path), Verdict)
@@ -226,13 +223,6 @@ def _host_facts(paths: CampaignPaths):
 
 # ---------------------------------------------------------------------------------------------
 # small I/O helpers
-
-
-def _write_atoms(path: Path, atoms: Atoms | list[Atoms]) -> None:
-    """Write one structure or several frames as extended XYZ, published atomically."""
-    tmp = path.with_name(f".{path.name}.tmp")
-    write(tmp, atoms, format="extxyz")
-    atomic_publish(tmp, path)
 
 
 @contextlib.contextmanager
@@ -296,11 +286,7 @@ def _tip_for(paths: CampaignPaths, step: int) -> LedgerRecord | None:
         if step < expected:
             raise LedgerError(f"step {step}: already recorded in {paths.ledger}; not recomputed")
         raise LedgerError(f"step {step}: cannot run before step {expected} is recorded")
-    if (
-        tip is not None
-        and tip.outcome == "stop"
-        and not StepPaths(paths.step(step)).handover.exists()
-    ):
+    if is_stopped(paths, tip):
         raise LedgerError(f"step {step}: the campaign stopped at step {tip.step}")
     return tip
 
@@ -401,7 +387,7 @@ def _prepare(paths: CampaignPaths, step: int, round_: int) -> Prepared:
     if round_ == 0 and tip is not None and tip.outcome == "continue":
         _link_or_copy(handed_on, sp.input)  # the previous step's hand-on, verified above
     else:
-        _write_atoms(sp.input, atoms)
+        atomic_write_extxyz(sp.input, atoms)
     ctx = _context(paths, step, charge, movable)
     sp.engine.mkdir(parents=True, exist_ok=True)
     get_engine(campaign).prepare(atoms, sp.engine, ctx)
@@ -523,12 +509,8 @@ def _collect(paths: CampaignPaths, step: int, round_: int) -> Collected:
     result, pot = get_engine(campaign).collect(sp.engine)
     _dedupe(sp.input, sp.engine / ENGINE_INPUT)  # the compute is over: inputs are final
     engine_map = sp.engine / ENGINE_MAP
-    sp.potential.unlink(missing_ok=True)
     if engine_map.is_file():  # the engine's own float32 map: link, do not copy
-        try:
-            os.link(engine_map, sp.potential)
-        except OSError:
-            shutil.copyfile(engine_map, sp.potential)
+        _link_or_copy(engine_map, sp.potential)
     else:
         tmp = sp.root / ".potential.npz.tmp.npz"
         grid.save_npz(tmp, pot)
@@ -540,7 +522,7 @@ def _collect(paths: CampaignPaths, step: int, round_: int) -> Collected:
     relaxed = result.atoms()
     forces = None if result.forces is None else np.asarray(result.forces)
     relaxed.calc = SinglePointCalculator(relaxed, energy=result.energy, forces=forces)
-    _write_atoms(sp.relaxed, relaxed)
+    atomic_write_extxyz(sp.relaxed, relaxed)
     collected = Collected(
         step=step, round=round_, energy=result.energy, scf_converged=result.scf_converged
     )
@@ -588,10 +570,8 @@ def _assess(paths: CampaignPaths, step: int, round_: int) -> Verdict:
     tip = _tip_for(paths, step)
     campaign = _campaign(paths)
     sp = StepPaths(paths.step(step))
-    prep = _read_marker(sp.marker(round_, "prepared"), Prepared)
-    result = StepResult.model_validate_json(sp.result.read_bytes())
-    relaxed = read(sp.relaxed)
-    relaxed.calc = None
+    done = _Round(sp, round_)
+    prep, result, relaxed = done.prep, done.result, done.relaxed
     host = _host(paths)
     n_host = len(host)
     findings = _findings(campaign, paths, step, relaxed, host, result)
@@ -635,15 +615,28 @@ def _assess(paths: CampaignPaths, step: int, round_: int) -> Verdict:
             _write_marker(sp.marker(round_, "verdict"), verdict)
             log.info("step %04d: screening the %d deepest wells", step, len(sites))
             return verdict
-    return _finish(paths, campaign, tip, step, round_, findings, reason, "verdict")
+    return _finish(paths, campaign, tip, done, host, findings, reason, "verdict")
+
+
+class _Round:
+    """What the rules before ``assess`` left of one round: the prepared and computed
+    markers, the result and the structure after the compute (read once per body)."""
+
+    def __init__(self, sp: StepPaths, round_: int) -> None:
+        self.sp, self.round = sp, round_
+        self.prep = _read_marker(sp.marker(round_, "prepared"), Prepared)
+        self.comp = _read_marker(sp.marker(round_, "computed"), Computed)
+        self.result = StepResult.model_validate_json(sp.result.read_bytes())
+        self.relaxed = read(sp.relaxed)
+        self.relaxed.calc = None
 
 
 def _finish(
     paths: CampaignPaths,
     campaign: Campaign,
     tip: LedgerRecord | None,
-    step: int,
-    round_: int,
+    done: _Round,
+    host: Atoms,
     findings: list[checks.Finding],
     reason: str | None,
     stage: str,
@@ -651,22 +644,20 @@ def _finish(
 ) -> Verdict:
     """The placement decision (unless ``reason`` already stops the campaign), the hand-on
     structure or STOP, the ledger record and the published status."""
-    sp = StepPaths(paths.step(step))
-    prep = _read_marker(sp.marker(round_, "prepared"), Prepared)
-    comp = _read_marker(sp.marker(round_, "computed"), Computed)
-    result = StepResult.model_validate_json(sp.result.read_bytes())
-    relaxed = read(sp.relaxed)
-    relaxed.calc = None
-    n_host = len(_host(paths))
-    units = host_formula_units(_host(paths), campaign.host.formula_unit)
+    sp, round_, step = done.sp, done.round, done.prep.step
+    prep, comp, result, relaxed = done.prep, done.comp, done.result, done.relaxed
+    n_host = len(host)
+    units = host_formula_units(host, campaign.host.formula_unit)
     decision = None
     if reason is None:
-        decision = _decide(campaign, sp, relaxed, n_host, step, prep.charge, energy_of)
+        decision = _decide(campaign, sp, relaxed, n_host, step, prep.guests, energy_of)
         atomic_write_json(sp.decision, decision.model_dump(mode="json"))
         reason = decide_step.after_decision(campaign, decision)
         if reason is None:
             sites = [s.position for s in decision.chosen]
-            _write_atoms(sp.next, decide_step.with_guests(relaxed, campaign.guest.element, sites))
+            atomic_write_extxyz(
+                sp.next, decide_step.with_guests(relaxed, campaign.guest.element, sites)
+            )
             log.info(
                 "step %04d: E = %.6f eV; next %s at (%.3f, %.3f, %.3f) Å, %.3f V",
                 step, result.energy, campaign.guest.element, *decision.chosen[0].position,
@@ -758,13 +749,13 @@ def _findings(campaign, paths, step, relaxed, host, result) -> list[checks.Findi
 
 
 def _decide(
-    campaign, sp: StepPaths, relaxed, n_host, step, charge, energy_of=None
+    campaign, sp: StepPaths, relaxed, n_host, step, guests, energy_of=None
 ) -> placement.Decision:
     """The placement decision of a step (the same call replay makes). The ``screened`` rule
     takes its candidates' energies from ``energy_of`` (the step's `screen` jobs), else computes
     them one after the other here."""
     if campaign.placement.rule == "screened" and energy_of is None:
-        energy_of = _screening_energies(campaign, relaxed, sp, step, charge)
+        energy_of = _screening_energies(campaign, relaxed, sp, step, guests)
     pot = grid.load_npz(sp.potential)
     return placement.decide(
         pot,
@@ -779,41 +770,16 @@ def _decide(
 
 
 def _screening_energies(
-    campaign: Campaign, relaxed: Atoms, sp: StepPaths, step: int, charge: int
+    campaign: Campaign, relaxed: Atoms, sp: StepPaths, step: int, guests: int
 ) -> placement.EnergyFunction:
-    """``energy_of`` for the ``screened`` rule: a single point per candidate site (eV).
-
-    Each candidate is computed in ``engine/screen-NN`` with the screening engine (default: the
-    campaign's own), without relaxation, warm-started from this step's own density.
-    """
-    screen = campaign.placement.screen
-    engine_cfg = screen.engine if screen.engine is not None else campaign.engine
-    variant = campaign.model_copy(
-        update={"engine": engine_cfg, "relax": campaign.relax.model_copy(update={"enabled": False})}
-    )
-    trial_charge = charge + (1 if campaign.guest.charge_mode == "cation" else 0)
+    """``energy_of`` for the ``screened`` rule computing the candidates one after the other
+    here (used where no `screen` jobs ran: extending a stopped campaign)."""
 
     def energy_of(sites: list[placement.Site]) -> list[float | None]:
-        out: list[float | None] = []
-        for i, site in enumerate(sites):
-            trial = decide_step.with_guests(relaxed, campaign.guest.element, [site.position])
-            wd = sp.engine / f"screen-{i:02d}"
-            wd.mkdir(parents=True, exist_ok=True)
-            ctx = ComputeContext(step=step, charge=trial_charge, previous=sp.engine)
-            try:
-                done = run_engine(variant, trial, wd, ctx)
-            except IonwellError as err:
-                log.warning("step %04d: screening candidate %d failed: %s", step, i, err)
-                out.append(None)
-                continue
-            ok = done.result is not None and done.result.scf_converged
-            out.append(done.result.energy if ok else None)
-            log.info(
-                "step %04d: screening candidate %d at (%.3f, %.3f, %.3f): %s",
-                step, i, *site.position,
-                f"E = {done.result.energy:.6f} eV" if ok else "SCF not converged",
-            )  # fmt: skip
-        return out
+        return [
+            _screen_one(campaign, relaxed, sp, step, guests, i, site.position)[0]
+            for i, site in enumerate(sites)
+        ]
 
     return energy_of
 
@@ -848,17 +814,51 @@ def _screen_candidates(campaign, sp: StepPaths, relaxed, n_host, step) -> list[l
     return asked
 
 
-def _screen_variant(campaign: Campaign) -> Campaign:
-    screen = campaign.placement.screen
-    engine_cfg = screen.engine if screen.engine is not None else campaign.engine
-    return campaign.model_copy(
-        update={"engine": engine_cfg, "relax": campaign.relax.model_copy(update={"enabled": False})}
+def _screen_one(
+    campaign: Campaign,
+    relaxed: Atoms,
+    sp: StepPaths,
+    step: int,
+    guests: int,
+    index: int,
+    position: list[float],
+) -> tuple[float | None, str]:
+    """One candidate's single point (eV, or None and why) with the screening engine (default:
+    the campaign's), no relaxation, in ``engine/screen-NN``, warm-started from the step's own
+    engine folder."""
+    screen_cfg = campaign.placement.screen
+    variant = campaign.model_copy(
+        update={
+            "engine": screen_cfg.engine if screen_cfg.engine is not None else campaign.engine,
+            "relax": campaign.relax.model_copy(update={"enabled": False}),
+        }
     )
+    trial = decide_step.with_guests(relaxed, campaign.guest.element, [position])
+    wd = sp.engine / f"screen-{index:02d}"
+    wd.mkdir(parents=True, exist_ok=True)
+    charge = decide_step.system_charge(campaign, guests + 1)
+    ctx = ComputeContext(step=step, charge=charge, previous=sp.engine)
+    energy, message = None, ""
+    try:
+        done = run_engine(variant, trial, wd, ctx)
+    except IonwellError as err:
+        message = str(err)
+        log.warning("step %04d: screening candidate %d failed: %s", step, index, err)
+    else:
+        if done.result is not None and done.result.scf_converged:
+            energy = done.result.energy
+        else:
+            message = "SCF not converged"
+    log.info(
+        "step %04d: screening candidate %d at (%.3f, %.3f, %.3f): %s",
+        step, index, *position,
+        f"E = {energy:.6f} eV" if energy is not None else message,
+    )  # fmt: skip
+    return energy, message
 
 
 def screen(root: str | Path, step: int, round_: int, candidate: int) -> Screened:
-    """Body of rule ``screen``: one candidate site's single point with the screening engine
-    (default: the campaign's), warm-started from the step's own engine folder."""
+    """Body of rule ``screen``: one candidate site's single point (:func:`_screen_one`)."""
     paths = CampaignPaths(Path(root))
     with _reported(paths, step):
         campaign = _campaign(paths)
@@ -867,27 +867,7 @@ def screen(root: str | Path, step: int, round_: int, candidate: int) -> Screened
         prep = _read_marker(sp.marker(round_, "prepared"), Prepared)
         site = verdict.sites[candidate]
         relaxed = read(sp.relaxed)
-        trial = decide_step.with_guests(relaxed, campaign.guest.element, [site])
-        charge = decide_step.system_charge(campaign, prep.guests + 1)
-        wd = sp.engine / f"screen-{candidate:02d}"
-        wd.mkdir(parents=True, exist_ok=True)
-        ctx = ComputeContext(step=step, charge=charge, previous=sp.engine)
-        energy, message = None, ""
-        try:
-            done = run_engine(_screen_variant(campaign), trial, wd, ctx)
-        except IonwellError as err:
-            message = str(err)
-            log.warning("step %04d: screening candidate %d failed: %s", step, candidate, err)
-        else:
-            if done.result is not None and done.result.scf_converged:
-                energy = done.result.energy
-            else:
-                message = "SCF not converged"
-        log.info(
-            "step %04d: screening candidate %d at (%.3f, %.3f, %.3f): %s",
-            step, candidate, *site,
-            f"E = {energy:.6f} eV" if energy is not None else message,
-        )  # fmt: skip
+        energy, message = _screen_one(campaign, relaxed, sp, step, prep.guests, candidate, site)
         out = Screened(
             step=step, round=round_, candidate=candidate, position=site, energy=energy,
             message=message,
@@ -914,15 +894,8 @@ def decide(root: str | Path, step: int, round_: int) -> Verdict:
             for k in range(len(verdict.sites))
         ]
         findings = [checks.Finding.model_validate(f) for f in json.loads(sp.checks.read_text())]
-
-        def energy_of(sites: list[placement.Site]) -> list[float | None]:
-            out: list[float | None] = []
-            for site in sites:
-                hit = [
-                    k.energy for k in known
-                    if np.linalg.norm(np.subtract(k.position, site.position)) < 1e-9
-                ]  # fmt: skip
-                out.append(hit[0] if hit else None)
-            return out
-
-        return _finish(paths, campaign, tip, step, round_, findings, None, "decided", energy_of)
+        energy_of = placement.known_energies([(k.position, k.energy) for k in known])
+        done = _Round(sp, round_)
+        return _finish(
+            paths, campaign, tip, done, _host(paths), findings, None, "decided", energy_of
+        )

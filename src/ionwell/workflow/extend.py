@@ -111,8 +111,7 @@ def handover_decision(paths: CampaignPaths, campaign: Campaign, rec) -> Decision
     relaxed = read(sp.relaxed)
     relaxed.calc = None
     n_host = len(read(paths.host))
-    charge = decide_step.system_charge(campaign, rec.guests)
-    return _decide(campaign, sp, relaxed, n_host, rec.step, charge)
+    return _decide(campaign, sp, relaxed, n_host, rec.step, rec.guests)
 
 
 def handover(paths: CampaignPaths, campaign: Campaign) -> str | None:

@@ -16,10 +16,10 @@ from pydantic import BaseModel, ConfigDict
 from ionwell.campaign import CampaignPaths
 from ionwell.config import Campaign, parse_campaign
 from ionwell.errors import ConfigError
-from ionwell.ledger import last_record
+from ionwell.ledger import LedgerRecord, last_record
 from ionwell.store.paths import StepPaths
 
-__all__ = ["Plan", "WINDOW_KEY", "from_snakemake", "resolve_host_path"]
+__all__ = ["Plan", "WINDOW_KEY", "from_snakemake", "is_stopped", "resolve_host_path"]
 
 #: Snakemake config key (not part of the campaign) bounding the steps of one invocation.
 WINDOW_KEY = "ionwell_window"
@@ -39,6 +39,14 @@ class Plan(BaseModel):
     @property
     def last_step(self) -> int:
         return self.frontier - 1
+
+
+def is_stopped(paths: CampaignPaths, tip: LedgerRecord | None) -> bool:
+    """The campaign ended at its last record ``tip`` and was not extended since (an extension
+    is the handover decision ``ionwell run`` writes into the next step's folder)."""
+    if tip is None or tip.outcome != "stop":
+        return False
+    return not StepPaths(paths.step(tip.step + 1)).handover.exists()
 
 
 def resolve_host_path(campaign: Campaign, base_dir: Path) -> Campaign:
@@ -75,13 +83,10 @@ def from_snakemake(config: dict, configfiles: list, workdir: Path | None = None)
             "writes nothing)"
         )
     tip = last_record(paths.ledger)
-    stopped = tip is not None and tip.outcome == "stop"
-    if stopped and StepPaths(paths.step(tip.step + 1)).handover.exists():
-        stopped = False  # extended: ``ionwell run`` wrote the decision its last step did not make
     return Plan(
         campaign=campaign,
         root=str(root),
         frontier=0 if tip is None else tip.step + 1,
-        finished=stopped,
+        finished=is_stopped(paths, tip),
         window=window,
     )

@@ -5,21 +5,12 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from ase import Atoms
-from ase.io import write
-
-from ionwell.campaign import CampaignPaths, atomic_publish, freeze_or_check
+from ionwell.campaign import CampaignPaths, atomic_write_extxyz, freeze_or_check
 from ionwell.config import Campaign
 from ionwell.host import load_host
 from ionwell.workflow.plan import resolve_host_path
 
 __all__ = ["prepare_campaign", "setup"]
-
-
-def _write_atoms(path: Path, atoms: Atoms) -> None:
-    tmp = path.with_name(f".{path.name}.tmp")
-    write(tmp, atoms, format="extxyz")
-    atomic_publish(tmp, path)
 
 
 def prepare_campaign(campaign: Campaign, root: Path, base_dir: Path) -> CampaignPaths:
@@ -33,7 +24,7 @@ def prepare_campaign(campaign: Campaign, root: Path, base_dir: Path) -> Campaign
     atoms = None if paths.host.exists() else load_host(campaign.host, base_dir)
     freeze_or_check(paths, campaign)
     if atoms is not None:
-        _write_atoms(paths.host, atoms)
+        atomic_write_extxyz(paths.host, atoms)
     return paths
 
 

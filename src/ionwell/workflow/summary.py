@@ -7,11 +7,11 @@ from pathlib import Path
 from ase.io import read
 from pydantic import BaseModel
 
-from ionwell.campaign import CampaignPaths, atomic_write_text, load_frozen
+from ionwell.campaign import CampaignPaths, atomic_write_extxyz, atomic_write_text, load_frozen
 from ionwell.errors import LedgerError
 from ionwell.ledger import last_record, read_ledger, sync_mirror
 from ionwell.store.paths import StepPaths
-from ionwell.workflow.chain import StepError, _write_atoms
+from ionwell.workflow.chain import StepError
 
 __all__ = ["CampaignSummary", "describe_error", "summarize"]
 
@@ -41,7 +41,7 @@ def summarize(root: str | Path) -> CampaignSummary:
         a.calc = None
         a.info = {"step": rec.step, "guests": rec.guests, "energy": rec.energy}
         frames.append(a)
-    _write_atoms(paths.trajectory, frames)
+    atomic_write_extxyz(paths.trajectory, frames)
     sync_mirror(paths)
     summary = CampaignSummary(
         name=campaign.name,
