@@ -3,7 +3,7 @@ PY      ?= python3
 VENV    := .venv
 BIN     := $(VENV)/bin
 STAMP   := $(VENV)/.installed
-DEMO    ?= config/demo-li-bilayer.yaml
+DEMO    ?= config/demo-li-trilayer.yaml
 
 .PHONY: demo test test-fast lint format schema clean-demo
 
@@ -34,4 +34,4 @@ schema: $(STAMP)
 	$(BIN)/ionwell schema -o config/campaign.schema.json
 
 clean-demo:
-	rm -rf campaigns/demo-li-bilayer
+	rm -rf campaigns/demo-li-trilayer

@@ -1,6 +1,8 @@
 # After the loop: summary (trajectory, database mirror), the guest reference, the analysis
 # tables and plots, and the HTML report. The reference is a compute job beside the steps.
 
+import os
+
 from ionwell.workflow import finish as iw_finish
 from ionwell.workflow import summary as iw_summary
 
@@ -42,11 +44,19 @@ if IW_CAMPAIGN.analysis.reference is not None:
             iw_finish.reference(IW_CDIR)
 
 
+def iw_settings_input(wildcards):
+    # analysis settings set after the start (ionwell analyse --settings): a change re-analyses
+    f = f"{IW_CDIR}/analysis.yaml"
+    return [f] if os.path.exists(f) else []
+
+
 rule analysis:
     localrule: IW_LIGHT_LOCAL
     input:
         f"{IW_CDIR}/summary.json",
+        f"{IW_CDIR}/campaign.yaml",
         iw_reference_input,
+        iw_settings_input,
     output:
         f"{IW_CDIR}/analysis/analysis.json",
     run:

@@ -13,13 +13,17 @@ from ionwell.checks import (
     MAX_PAIRS,
     Finding,
     HostFacts,
+    decision_findings,
     host_digest,
     host_facts,
+    metal_neighbour_distance,
     step_findings,
     worst_severity,
 )
-from ionwell.config import ChecksConfig, FlakeBuilder
+from ionwell.config import BoxRegion, ChecksConfig, FlakeBuilder
+from ionwell.grid import Grid
 from ionwell.host import build_flake
+from ionwell.placement import Decision, Galleries, Region, place
 
 A_GRAPHITE = 2.46  # Å, in-plane lattice constant of graphite (handbook value)
 D_GRAPHITE = 3.35  # Å, interlayer spacing of graphite (handbook value)
@@ -57,6 +61,7 @@ def _both(
     relax_converged: bool | None = True,
     moved: list[int] | tuple[int, ...] = (),
     pristine: Atoms | None = None,
+    guest: str | None = None,
     **settings,
 ) -> tuple[list[Finding], list[Finding]]:
     """Findings of the full path (moved=None) and of the incremental one (``moved``).
@@ -65,7 +70,12 @@ def _both(
     """
     cfg = ChecksConfig(**{**_BASE, **settings})
     facts = host_facts(atoms[:n_host] if pristine is None else pristine, cfg)
-    kw = {"scf_converged": scf_converged, "relax_converged": relax_converged, "envelope": envelope}
+    kw = {
+        "scf_converged": scf_converged,
+        "relax_converged": relax_converged,
+        "envelope": envelope,
+        "guest": guest,
+    }
     full = step_findings(3, atoms, n_host, cfg, facts, **kw)
     fast = step_findings(3, atoms, n_host, cfg, facts, moved=moved, **kw)
     return full, fast
@@ -440,3 +450,244 @@ def test_moved_host_atom_onto_another_is_found() -> None:
     # told the host is unchanged, the incremental check does not look at host pairs
     _, blind = _both(atoms, n, moved=(), **kw)
     assert "atoms-too-close" not in _codes(blind)
+
+
+# --- guests packed tighter than in their elemental solid --------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("element", "handbook", "tol"),
+    [
+        # handbook nearest-neighbour distances (from memory), Å: bcc Li 3.04 (room temperature;
+        # ASE's reference a = 3.49 Å is a low-temperature value, giving 3.02); bcc Na 3.72 (room
+        # temperature, a = 4.29 Å; ASE's a = 4.23 Å gives 3.66); hcp Mg 3.20 (a = 3.21 Å,
+        # c = 5.21 Å: the out-of-plane neighbours are the nearer); fcc Al 2.86 (a = 4.05 Å)
+        ("Li", 3.04, 0.03),
+        ("Na", 3.72, 0.07),
+        ("Mg", 3.20, 0.01),
+        ("Al", 2.86, 0.01),
+    ],
+)
+def test_metal_neighbour_distance_matches_handbook_and_the_built_solid(
+    element: str, handbook: float, tol: float
+) -> None:
+    from ase.build import bulk
+    from ase.neighborlist import neighbor_list
+
+    got = metal_neighbour_distance(element)
+    assert got == pytest.approx(handbook, abs=tol)
+    # cross-check: ASE's own reference solid, its shortest distance by a neighbour list
+    d = neighbor_list("d", bulk(element), 5.0)
+    assert got == pytest.approx(float(d.min()), abs=1e-9)
+
+
+def test_metal_neighbour_distance_closed_forms_and_unknowns() -> None:
+    # bcc Li from ASE's a = 3.49 Å: a·√3/2
+    assert metal_neighbour_distance("Li") == pytest.approx(3.49 * np.sqrt(3) / 2, abs=1e-12)
+    assert metal_neighbour_distance("Li") == pytest.approx(3.022, abs=1e-3)
+    # built with ase.build.bulk: β-Sn (bct), handbook nearest neighbours about 3.02 Å (memory)
+    assert metal_neighbour_distance("Sn") == pytest.approx(3.02, abs=0.02)
+    # a molecule, an atom, a state without its atomic basis, no reference state at all
+    for element in ("H", "He", "U", "Am"):
+        assert metal_neighbour_distance(element) is None
+    with pytest.raises(ValueError, match="not a chemical element"):
+        metal_neighbour_distance("Qq")
+
+
+def test_guests_closer_than_metal() -> None:
+    # two Li 2.42 Å apart in the gallery: above the 2 Å alert, below 0.9 × 3.02 Å (bcc Li)
+    atoms, n = _host_with_guests((-1.21, 0.0, 0.0), (1.21, 0.0, 0.0))
+    findings = _run(atoms, n, guest="Li")
+    assert _codes(findings) == ["guests-closer-than-metal"]
+    f = findings[0]
+    assert f.severity == "warning" and f.step == 3
+    assert f"guests {n} (Li) and {n + 1} (Li) are 2.420 Å apart (below 2.72 Å" in f.message
+    assert "0.9 × 3.022 Å" in f.message and "bcc Li" in f.message
+    # off without the guest element, with guest_packing None, or against a shorter distance
+    assert _run(atoms, n) == []
+    assert _run(atoms, n, guest="Li", guest_packing=None) == []
+    assert _run(atoms, n, guest="Li", guest_metal_distance=2.5) == []  # limit 2.25 Å
+    found = _run(atoms, n, guest="Li", guest_metal_distance=2.8, guest_packing=1.0)
+    assert "guest_metal_distance" in found[0].message and "below 2.8 Å" in found[0].message
+    # a guest without a known solid: skipped (ASE's hydrogen is a molecule)
+    assert _run(atoms, n, guest="H") == []
+    # 4.3 Å apart, the Li–Li distance in LiC6 (√3 × 2.46 Å; handbook, from memory): quiet
+    assert _run(*_clean(), guest="Li") == []
+
+
+def test_guests_closer_than_metal_leaves_closer_pairs_to_the_guest_alert() -> None:
+    atoms, n = _host_with_guests((-0.8, 0.0, 0.0), (0.8, 0.0, 0.0), (3.3, 0.0, 0.0))
+    # 1.6 Å: guests-too-close only; 2.5 Å (second and third): below the packing limit
+    findings = _run(atoms, n, guest="Li")
+    assert _codes(findings) == ["guests-too-close", "guests-closer-than-metal"]
+    assert f"{n + 1} (Li) and {n + 2} (Li) are 2.500 Å" in findings[1].message
+    # without the alert both pairs are packed too tight, the closest first
+    findings = _run(atoms, n, guest="Li", guest_alert=None)
+    assert _codes(findings) == ["guests-closer-than-metal"] * 2
+    assert "1.600 Å" in findings[0].message and "2.500 Å" in findings[1].message
+
+
+def test_guests_closer_than_metal_across_a_periodic_boundary() -> None:
+    # graphite 3×3×1 with two Li in a gallery, 2.42 Å apart through the x face of the cell
+    graphite = _graphite_ab().repeat((3, 3, 1))
+    n = len(graphite)
+    a = graphite.cell.array[0]
+    z = D_GRAPHITE / 2
+    spots = [[0.3, 1.0, z], list(a + [0.3 - 2.42, 1.0, z])]
+    atoms = graphite + Atoms("Li2", positions=spots)
+    full, fast = _both(atoms, n, guest="Li", envelope=None)
+    assert fast == full and _codes(full) == ["guests-closer-than-metal"]
+    assert "2.420 Å" in full[0].message
+
+
+# --- the placement decision -------------------------------------------------------------------
+
+_N = 30  # a 6 Å open grid at 0.2 Å spacing
+
+
+def _map(centres, depths, widths, offset: float = 0.0, n: int = _N, spacing: float = 0.2) -> Grid:
+    """V = offset - Σ a exp(-|r-c|²/2s²) (V) on an open grid from the origin."""
+    g = Grid(np.zeros(3), np.eye(3) * spacing, np.zeros((n, n, n)))
+    p = g.points().reshape(-1, 3)
+    v = np.full(len(p), float(offset))
+    for c, a, s in zip(centres, depths, widths, strict=True):
+        v -= a * np.exp(-np.sum((p - np.asarray(c)) ** 2, axis=1) / (2 * s * s))
+    return Grid(g.origin, g.axes, v.reshape(g.shape))
+
+
+def _decision_codes(d: Decision, charge_mode: str = "neutral", **settings) -> list[str]:
+    cfg = ChecksConfig(**settings)
+    return _codes(decision_findings(7, d, cfg, charge_mode=charge_mode, guest="Li"))
+
+
+_CARBON = Atoms("C", positions=[[3.0, 3.0, 2.5]])
+_ABOVE = _map([(3.0, 3.0, 5.0)], [1.0], [0.8])  # a well 2.5 Å above the carbon
+
+
+def test_site_on_region_edge() -> None:
+    # the well lies outside a 1.8 Å envelope: the chosen site is on the envelope's edge
+    d = place(_ABOVE, _CARBON, "Li", within=1.8)
+    assert d.chosen[0].boundary == "region"
+    found = decision_findings(7, d, ChecksConfig(), charge_mode="neutral", guest="Li")
+    assert _codes(found) == ["site-on-region-edge"]
+    f = found[0]
+    assert f.severity == "warning" and f.step == 7 and f.message.startswith("step 7:")
+    assert "(3.00, 3.00, 4.20) Å, -0.607 V" in f.message
+    assert "not by a minimum of the potential" in f.message
+    assert "placement.within (the host envelope, 1.8 Å)" in f.message
+    assert "placement.exclusion (C 1.53 Å)" in f.message
+    assert "gallery_margin" not in f.message
+    # switched off; and quiet with the well inside a 4 Å envelope
+    assert _decision_codes(d, site_boundary=False) == []
+    assert _decision_codes(place(_ABOVE, _CARBON, "Li", within=4.0)) == []
+
+
+def test_site_on_region_edge_names_galleries_boxes_and_spheres() -> None:
+    d = place(_ABOVE, _CARBON, "Li", within=1.8)
+    region = Region(
+        boxes=[BoxRegion(lower=(0.0, 0.0, 0.0), upper=(6.0, 6.0, 6.0))],
+        galleries=Galleries(normal=[0.0, 0.0, 1.0], intervals=[(2.0, 6.0)], margin=0.5),
+    )
+    found = decision_findings(
+        7,
+        d.model_copy(update={"region": region}),
+        ChecksConfig(),
+        charge_mode="neutral",
+        guest="Li",
+    )
+    msg = found[0].message
+    assert "placement.gallery_margin (0.5 Å, galleries_only)" in msg
+    assert "placement.boxes/spheres" in msg and ", or enlarge placement.boxes" in msg
+
+
+def test_site_on_grid_face() -> None:
+    # a well centred 1.2 Å beyond the top face of the grid (z = 5.8 Å)
+    face = _map([(3.0, 3.0, 7.0)], [1.0], [1.0])
+    d = place(face, Atoms(), "Li", within=None)
+    assert d.chosen[0].boundary == "grid"
+    found = decision_findings(7, d, ChecksConfig(), charge_mode="neutral", guest="Li")
+    assert _codes(found) == ["site-on-grid-face"]
+    assert "engine.potential_grid.margin" in found[0].message
+    assert "(3.00, 3.00, 5.80) Å" in found[0].message and "step 7" in found[0].message
+    assert _decision_codes(d, site_boundary=False) == []
+    # the same well inside the grid: quiet
+    inside = place(_map([(3.0, 3.0, 3.0)], [1.0], [1.0]), Atoms(), "Li", within=None)
+    assert inside.chosen[0].boundary is None
+    assert _decision_codes(inside) == []
+
+
+def test_well_repels_cation() -> None:
+    # a 0.5 V deep well on a +2.5 V plateau: its bottom, +2.0 V, repels a cation (energy z·e·V;
+    # electrostatics)
+    d = place(_map([(3.0, 3.0, 3.0)], [0.5], [0.8], offset=2.5), Atoms(), "Li", within=None)
+    assert d.chosen[0].potential == pytest.approx(2.0, abs=1e-3)
+    found = decision_findings(7, d, ChecksConfig(), charge_mode="cation", guest="Li")
+    assert _codes(found) == ["well-repels-cation"]
+    assert "+2.000 V" in found[0].message and "repels a Li cation" in found[0].message
+    assert "step 7" in found[0].message
+    # neutral mode, the check off, or a limit above the well: quiet
+    assert _decision_codes(d) == []
+    assert _decision_codes(d, "cation", cation_well_max=None) == []
+    assert _decision_codes(d, "cation", cation_well_max=2.5) == []
+    # the well at -0.5 V: quiet in cation mode too
+    low = place(_map([(3.0, 3.0, 3.0)], [0.5], [0.8]), Atoms(), "Li", within=None)
+    assert _decision_codes(low, "cation") == []
+
+
+_SIX = [(2.0 + 3.0 * i, 2.0 + 3.0 * j, 5.0) for i in range(3) for j in range(2)]
+
+
+def _flat(depths: list[float], extra: bool = False) -> Grid:
+    centres, widths = list(_SIX), [0.6] * 6
+    if extra:  # a clearly shallower seventh well
+        centres.append((5.0, 8.5, 5.0))
+        depths, widths = [*depths, 0.5], [*widths, 0.6]
+    return _map(centres, depths, widths, n=40, spacing=0.25)
+
+
+def test_map_too_flat() -> None:
+    # six wells of equal depth, ±4 mV of noise: all within 0.02 V of the deepest
+    noise = np.random.default_rng(3).uniform(-0.004, 0.004, 6)
+    d = place(_flat(list(1.0 + noise)), Atoms(), "Li", within=None)
+    assert len(d.candidates) == 6
+    found = decision_findings(7, d, ChecksConfig(), charge_mode="neutral", guest="Li")
+    assert _codes(found) == ["map-too-flat"]
+    msg = found[0].message
+    assert msg.startswith("step 7: all 6 recorded candidate wells lie within 0.02 V")
+    assert "records only the placement.candidates deepest" in msg
+    assert "engine.potential_grid.spacing" in msg and "'screened'" in msg
+    # with a shallower seventh well recorded, six of seven tie
+    d7 = place(_flat(list(1.0 + noise), extra=True), Atoms(), "Li", within=None)
+    msg = decision_findings(7, d7, ChecksConfig(), charge_mode="neutral", guest="Li")[0].message
+    assert "6 of the 7 recorded candidate wells" in msg and "records only" not in msg
+    # fewer ties than flat_map_wells, a tighter tolerance, or the check off: quiet
+    assert _decision_codes(d, flat_map_wells=7) == []
+    assert _decision_codes(d, flat_map_tolerance=0.001) == []
+    assert _decision_codes(d, flat_map_tolerance=None) == []
+    # one clearly deepest well (0.1 V below the rest): quiet
+    deep = place(_flat([1.1, *list(1.0 + noise[1:])]), Atoms(), "Li", within=None)
+    assert _decision_codes(deep) == []
+
+
+def test_decision_without_sites_has_no_findings() -> None:
+    d = place(_ABOVE, _CARBON, "Li", exclusion={"C": 9.0}, within=3.0)
+    assert d.chosen == [] and d.candidates == []
+    assert _decision_codes(d, "cation") == []
+
+
+def test_negative_voltage_step_is_flagged_and_a_positive_profile_is_quiet():
+    # Worked example (the voltage formula of Aydinol et al., Phys. Rev. B 56, 1354 (1997)):
+    # E(0) = 0, E(1) = -2.0, E(2) = -2.5 eV with mu = -1.0 eV gives V(0->1) = +1.0 V and
+    # V(1->2) = -(-2.5 + 2.0 + 1.0) = -0.5 V, a negative step (Li would rather plate as metal).
+    from ionwell.checks import voltage_findings
+    from ionwell.energetics import voltage_profile
+
+    steps = voltage_profile([0.0, -2.0, -2.5], [0, 1, 2], mu=-1.0)
+    assert [s.voltage for s in steps] == pytest.approx([1.0, -0.5])
+    found = voltage_findings(steps, 0.0, {0: 0, 1: 1, 2: 4})
+    assert [(f.code, f.step) for f in found] == [("negative-voltage", 4)]
+    assert "-0.500 V" in found[0].message
+    # a positive profile and a switched-off check are quiet; another floor has its own code
+    assert voltage_findings(voltage_profile([0.0, -2.0, -3.5], [0, 1, 2], -1.0), 0.0, {}) == []
+    assert voltage_findings(steps, None, {}) == []
+    assert [f.code for f in voltage_findings(steps, 1.5, {})] == ["voltage-below-floor"] * 2

@@ -68,3 +68,32 @@ def test_hull_edge_cases():
     with pytest.raises(ValueError, match="pristine host"):
         formation_energies([1.0], [1], 0.0)
     assert np.allclose(formation_energies(E, N, MU)[0], 0.0)
+
+
+@pytest.mark.parametrize("terminated", [True, False])
+def test_lic6_capacity_per_c6_with_and_without_terminating_hydrogen(terminated):
+    # Handbook value: LiC6 stores 372 mAh per g of carbon (from memory). The default formula
+    # unit of a carbon host is C6 whatever else it holds: terminating hydrogen is not host
+    # carbon, so neither the count nor the mass includes it (common practice for flakes).
+    from ase.build import graphene
+
+    from ionwell.analysis import resolve_formula_unit
+    from ionwell.config import AnalysisConfig, FlakeBuilder
+    from ionwell.host import build_flake, host_formula_units
+
+    if terminated:
+        host = build_flake(FlakeBuilder(layers=2, shells=2))  # two coronene sheets, C48H24
+        assert "H" in host.get_chemical_symbols()
+    else:
+        host = graphene(size=(3, 3, 1), vacuum=5.0)  # 18 C, periodic sheet
+    unit = resolve_formula_unit(host, AnalysisConfig())
+    assert unit == {"C": 6}
+    units = host_formula_units(host, unit)
+    assert units == host.get_chemical_symbols().count("C") / 6
+    # one Li per six carbons: x = 1
+    assert capacity_mah_per_g(units / units, unit) == pytest.approx(372.0, abs=1.0)
+    # an explicit formula unit wins over the default (here: per C24H12 sheet, H counted)
+    own = resolve_formula_unit(host, AnalysisConfig(formula_unit={"C": 24, "H": 12}))
+    if terminated:
+        assert own == {"C": 24, "H": 12}
+        assert host_formula_units(host, own) == 2

@@ -783,3 +783,102 @@ def test_next_untried_skips_tried_sites_and_keeps_the_separation():
     assert next_untried(wells, tried, count=2, separation=3.0) == [1, 3]
     # everything tried: nothing left
     assert next_untried(wells, [w.position for w in wells]) == []
+
+
+# ---------------------------------------------------------------------------------------------
+# which boundary a well touches: the grid's face or the admissible region's edge
+
+SMALL = 30  # 6 Å box at SPACING
+
+
+def _one_well(centre, depth=1.0, width=0.8):
+    def field(p):
+        return _wells(p, [centre], [depth], [width])
+
+    return field
+
+
+def test_boundary_tells_the_region_edge_from_the_grid_face_and_the_inside():
+    # a carbon at z = 2.5 Å and a Gaussian well 2.5 Å above it: with a 1.8 Å envelope the well's
+    # minimum is outside the admissible region, whose lowest point is then on its outer edge,
+    # straight towards the well (z = 2.5 + 1.8 = 4.3 Å, the grid point below at 4.2 Å)
+    atoms = Atoms("C", positions=[[3.0, 3.0, 2.5]])
+    grid = _grid(_one_well((3.0, 3.0, 5.0)), n=SMALL)
+    tight = place(grid, atoms, "Li", within=1.8)
+    site = tight.chosen[0]
+    assert site.boundary == "region" and site.edge
+    assert np.linalg.norm(np.array(site.position) - [3.0, 3.0, 4.2]) < 1e-9
+    # a 4 Å envelope holds the well: refined onto its centre, no boundary
+    roomy = place(grid, atoms, "Li", within=4.0)
+    site = roomy.chosen[0]
+    assert site.boundary is None and not site.edge
+    assert np.linalg.norm(np.array(site.position) - [3.0, 3.0, 5.0]) < 0.02
+    # a well centred 1.2 Å beyond the top face (z = 5.8 Å) of an open grid: its lowest grid
+    # point is on that face
+    face = place(_grid(_one_well((3.0, 3.0, 7.0), width=1.0), n=SMALL), Atoms(), "Li", within=None)
+    site = face.chosen[0]
+    assert site.boundary == "grid" and site.edge
+    assert site.index == [15, 15, SMALL - 1]
+    # every well: edge exactly when it touches a boundary; the decision is deterministic
+    for d in (tight, roomy, face):
+        assert all(s.edge == (s.boundary is not None) for s in d.candidates)
+        assert Decision.model_validate_json(d.model_dump_json()) == d
+    assert place(grid, atoms, "Li", within=1.8) == tight
+
+
+def test_boundary_of_a_user_box_is_the_region_and_periodic_axes_have_no_face():
+    # a box that stops 1 Å short of the well: the site sits on the box's face
+    grid = _grid(_one_well((3.0, 3.0, 4.0)), n=SMALL)
+    box = Region(boxes=[BoxRegion(lower=(1.0, 1.0, 1.0), upper=(5.0, 5.0, 3.0))])
+    d = place(grid, Atoms(), "Li", within=None, region=box)
+    assert d.chosen[0].boundary == "region"
+    assert d.chosen[0].position[2] == pytest.approx(3.0)
+    # the same well across the x boundary of a periodic grid: no face there, so no boundary
+    period = SMALL * SPACING
+
+    def field(p):
+        return _wells(p, [(-0.1, 3.0, 3.0)], [1.0], [0.8], period=period)
+
+    periodic = place(_grid(field, n=SMALL, pbc=(True, True, True)), Atoms(), "Li", within=None)
+    site = periodic.chosen[0]
+    assert site.index[0] in (0, SMALL - 1)
+    assert site.boundary is None and not site.edge
+
+
+def test_the_grid_face_wins_when_a_block_also_touches_the_region_edge():
+    # the deepest point is on the x = 0 face, and its block also holds inadmissible points
+    v = np.ones((8, 8, 8))
+    v[0, 4, 4] = -1.0
+    mask = np.ones(v.shape, dtype=bool)
+    mask[1, 5, 5] = False
+    grid = Grid(np.zeros(3), np.eye(3) * 0.3, v)
+    (well,) = find_wells(grid, mask, 1)
+    assert well.index == [0, 4, 4] and well.boundary == "grid" and well.edge
+    # the same block away from the face only touches the region's edge; the excluded point is
+    # higher than the well, so the well is a true minimum beside the edge: no boundary
+    v2 = np.ones((8, 8, 8))
+    v2[2, 4, 4] = -1.0
+    mask2 = np.ones(v2.shape, dtype=bool)
+    mask2[3, 5, 5] = False
+    (well,) = find_wells(Grid(np.zeros(3), np.eye(3) * 0.3, v2), mask2, 1)
+    assert well.index == [2, 4, 4] and well.boundary is None and well.edge
+    # the potential keeps falling across the edge (the excluded point is lower): the region
+    # sets the site
+    v2[3, 5, 5] = -2.0
+    (well,) = find_wells(Grid(np.zeros(3), np.eye(3) * 0.3, v2), mask2, 1)
+    assert well.index == [2, 4, 4] and well.boundary == "region" and well.edge
+
+
+def test_site_boundary_and_edge_agree():
+    site = Site(position=[0.0, 0.0, 0.0], potential=-1.0, index=[0, 0, 0], boundary="grid")
+    assert site.edge
+    assert Site.model_validate_json(site.model_dump_json()) == site
+    with pytest.raises(ValueError, match="edge site"):
+        Site(
+            position=[0.0, 0.0, 0.0], potential=-1.0, index=[0, 0, 0], edge=False, boundary="region"
+        )
+    # a record from before the boundary was kept: an edge, which one unknown
+    old = Site.model_validate(
+        {"position": [0, 0, 0], "potential": 0.5, "index": [0, 0, 0], "edge": True}
+    )
+    assert old.edge and old.boundary is None

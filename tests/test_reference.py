@@ -66,3 +66,44 @@ def test_reference_takes_exactly_one_way():
     }
     with pytest.raises(ConfigError, match="exactly one of 'value', 'cohesive_energy' or 'bulk'"):
         parse_campaign(data, "test config")
+
+
+def test_reference_set_after_the_start_replaces_the_recorded_one(tmp_path):
+    # analysis settings set after the start (analysis.yaml) override the frozen config; a
+    # changed reference is established anew, an unchanged one is read back
+    from ionwell.analysis import analysis_settings, parse_settings, set_settings
+
+    paths = _campaign(tmp_path, reference={"value": -1.9, "source": "first"})
+    frozen = paths.config.read_bytes()
+    assert guest_reference(paths.root).mu == -1.9
+    settings, source = analysis_settings(paths.root)
+    assert source.startswith("campaign.yaml")
+    new = parse_settings({"reference": {"value": -2.1, "source": "second"}}, "a.yaml")
+    set_settings(paths.root, new)
+    settings, source = analysis_settings(paths.root)
+    assert source.startswith("analysis.yaml") and settings.reference.value == -2.1
+    ref = guest_reference(paths.root)
+    assert (ref.mu, ref.source) == (-2.1, "second")
+    assert paths.config.read_bytes() == frozen  # the compute config is untouched
+    # a whole campaign config is accepted too: its analysis section is taken
+    whole = parse_settings({"name": "ref", "host": HOST, "analysis": {"rim_width": 2.5}}, "c.yaml")
+    assert whole.rim_width == 2.5 and whole.reference is None
+
+
+@pytest.mark.parametrize(
+    ("data", "expected"),
+    [
+        ({"referense": {"value": 1.0}}, "referense: unknown key"),
+        ({"dos_width": -1}, "dos_width: Input should be greater than 0"),
+        ({"formula_unit": {"Xx": 6}}, "formula_unit: expected a chemical element symbol"),
+        ({"charge_scheme": "bader"}, "charge_scheme: Input should be 'auto'"),
+        (["reference"], "expected a mapping of analysis settings"),
+    ],
+)
+def test_bad_analysis_settings_name_the_file_and_field(data, expected):
+    from ionwell.analysis import parse_settings
+
+    with pytest.raises(ConfigError) as err:
+        parse_settings(data, "extra.yaml")
+    assert str(err.value).startswith("extra.yaml: ")
+    assert expected in str(err.value)

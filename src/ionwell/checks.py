@@ -4,19 +4,40 @@ Pure functions: they look at one step's structure and flags and return findings;
 the loop themselves (the loop decides what an ``error`` means). Distances use the minimum image
 convention along periodic axes. Codes are short kebab-case strings, stable across versions:
 
-=========================  ========  ===========================================================
-code                       severity  meaning
-=========================  ========  ===========================================================
-``scf-not-converged``      error     the engine's SCF did not reach its tolerance
-``relax-not-converged``    warning   the relaxation stopped at its step cap above ``fmax``
-``non-finite-positions``   error     a position is NaN or infinite
-``atoms-too-close``        error     two atoms closer than ``min_distance`` (Å)
-``guest-on-host-atom``     error     a guest closer than ``guest_host_min`` (Å) to a host atom
-``guest-outside-envelope`` warning   a guest farther than ``envelope`` (Å) from every host atom
-``guests-too-close``       warning   two guests closer than ``guest_alert`` (Å)
-``host-fragmented``        error     the host falls into more bonded pieces than it started with
-``edge-crowding``          warning   more than ``rim_alert`` of the guests sit at the rim
-=========================  ========  ===========================================================
+============================  ========  ========================================================
+code                          severity  meaning
+============================  ========  ========================================================
+``scf-not-converged``         error     the engine's SCF did not reach its tolerance
+``relax-not-converged``       warning   the relaxation stopped at its step cap above ``fmax``
+``non-finite-positions``      error     a position is NaN or infinite
+``atoms-too-close``           error     two atoms closer than ``min_distance`` (Å)
+``guest-on-host-atom``        error     a guest closer than ``guest_host_min`` (Å) to a host atom
+``guest-outside-envelope``    warning   a guest farther than ``envelope`` (Å) from every host
+                                        atom
+``guests-too-close``          warning   two guests closer than ``guest_alert`` (Å)
+``guests-closer-than-metal``  warning   two guests closer than ``guest_packing`` × their
+                                        nearest-neighbour distance in the elemental solid
+                                        (``guest_metal_distance``, default
+                                        :func:`metal_neighbour_distance`)
+``host-fragmented``           error     the host falls into more bonded pieces than it started
+                                        with
+``edge-crowding``             warning   more than ``rim_alert`` of the guests sit at the rim
+``site-on-grid-face``         warning   a chosen site lies on the potential grid's face (its
+                                        well may continue outside the grid)
+``site-on-region-edge``       warning   a chosen site lies on the admissible region's boundary
+                                        (set by the region's bounds, not by the potential)
+``well-repels-cation``        warning   cation mode: a chosen well's potential is at or above
+                                        ``cation_well_max`` (V)
+``map-too-flat``              warning   at least ``flat_map_wells`` candidate wells lie within
+                                        ``flat_map_tolerance`` (V) of the deepest
+``negative-voltage``          warning   a voltage step between hull vertices is below 0 V
+                                        (``analysis.voltage_floor``; another floor:
+                                        ``voltage-below-floor``)
+============================  ========  ========================================================
+
+The first nine look at a step's structure (:func:`step_findings`); the next four at the
+placement decision taken on the step's potential map (:func:`decision_findings`); the last at
+the voltage profile of the analysis (:func:`voltage_findings`).
 
 Bonds for the fragment count use ``ase.neighborlist.natural_cutoffs`` (covalent radii) scaled by
 :data:`BOND_SCALE`. The *rim* of a particle is its edge atoms — terminating hydrogens and heavy
@@ -37,19 +58,26 @@ was accepted at step 0). For the same structure the findings are the same on eve
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import itertools
-from collections.abc import Sequence
-from typing import Literal
+import math
+from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING, Literal
 
 import numpy as np
 from ase import Atoms
+from ase.data import atomic_numbers, reference_states
 from ase.geometry import find_mic, get_distances
 from ase.neighborlist import neighbor_list
 from pydantic import BaseModel, ConfigDict, Field, model_validator
 from scipy.spatial import cKDTree
 
 from ionwell.config import ChecksConfig
+from ionwell.energetics import VoltageStep
+
+if TYPE_CHECKING:  # placement does not import checks; only the type is needed here
+    from ionwell.placement import Decision, Site
 
 __all__ = [
     "MAX_PAIRS",
@@ -64,9 +92,13 @@ __all__ = [
     "host_fragments",
     "rim_findings",
     "convergence_findings",
+    "decision_findings",
     "envelope_findings",
+    "guest_packing_findings",
     "guest_pair_findings",
+    "metal_neighbour_distance",
     "step_findings",
+    "voltage_findings",
     "worst_severity",
 ]
 
@@ -78,7 +110,9 @@ BOND_SCALE = 1.2
 MAX_PAIRS = 10
 
 Severity = Literal["info", "warning", "error"]
-_RANK = {"info": 0, "warning": 1, "error": 2}
+#: order of severities (sorting findings: errors first)
+SEVERITY_RANK = {"info": 0, "warning": 1, "error": 2}
+_RANK = SEVERITY_RANK
 
 
 class Finding(BaseModel):
@@ -138,14 +172,16 @@ def _pair_findings(
     code: str,
     what: str,
     limit: float,
+    why: str = "",
 ) -> list[Finding]:
+    """One finding per pair ``(d, a, b)``, closest first; ``why`` follows the limit in brackets."""
     pairs = sorted(pairs)
     out = [
         Finding(
             severity=severity,
             code=code,
             message=f"{what} {_label(atoms, a)} and {_label(atoms, b)} are {d:.3f} Å apart "
-            f"(below {limit:g} Å)",
+            f"(below {limit:g} Å{why})",
             step=step,
         )
         for d, a, b in pairs[:MAX_PAIRS]
@@ -357,6 +393,118 @@ def guest_pair_findings(
         code="guests-too-close",
         what="guests",
         limit=guest_alert,
+    )
+
+
+# --- guests packed tighter than in their elemental solid -------------------------------------
+
+#: Reference-state symmetries whose nearest-neighbour distance follows from the lattice constants
+#: alone. Source: textbook lattice geometry — bcc neighbours half a cube body diagonal away, fcc
+#: half a face diagonal, diamond a quarter body diagonal, hcp either in the basal plane (a) or
+#: in the adjacent plane (√(a²/3 + c²/4)). The tests check each against ``ase.build.bulk``.
+_CLOSED_FORM = ("bcc", "fcc", "hcp", "diamond")
+
+#: Reference states ASE's ``bulk`` builds as a one-atom cell when they carry no atomic basis; such
+#: a cell is not the element's structure (α-U has four atoms per orthorhombic cell), so its
+#: shortest distance would be meaningless.
+_NEED_BASIS = ("orthorhombic", "tetragonal", "cubic", "monoclinic")
+
+
+@functools.cache
+def metal_neighbour_distance(element: str) -> float | None:
+    """Nearest-neighbour distance (Å) in the elemental solid of ``element``, ASE's reference state.
+
+    From ``ase.data.reference_states`` (lattice constants in Å): bcc ``a·√3/2``, fcc ``a/√2``,
+    hcp ``min(a, √(a²/3 + c²/4))`` with ``c = a·(c/a)`` (in-plane and out-of-plane neighbours),
+    diamond ``a·√3/4``. Other symmetries (sc, bct, rhombohedral, or a state with its atomic
+    basis): the reference structure built by ``ase.build.bulk``, its shortest interatomic
+    distance by ``ase.neighborlist``. None when ASE has no reference state for the element, the
+    state is a molecule or an atom (``diatom``, ``atom``), or it lacks the atomic basis needed to
+    build it. E.g. Li (bcc, a = 3.49 Å): 3.022 Å. Raises ValueError for a non-element symbol.
+    """
+    z = atomic_numbers.get(element)
+    if z is None or element == "X":
+        raise ValueError(f"{element!r} is not a chemical element symbol (e.g. 'Li')")
+    ref = reference_states[z]
+    if not ref:
+        return None
+    sym = ref.get("symmetry")
+    if sym in _CLOSED_FORM:
+        a = float(ref["a"])
+        if sym == "bcc":
+            return a * math.sqrt(3.0) / 2.0
+        if sym == "fcc":
+            return a / math.sqrt(2.0)
+        if sym == "diamond":
+            return a * math.sqrt(3.0) / 4.0
+        c = a * float(ref["c/a"])
+        return min(a, math.sqrt(a * a / 3.0 + c * c / 4.0))
+    if sym in ("diatom", "atom") or (sym in _NEED_BASIS and ref.get("basis") is None):
+        return None
+    from ase.build import bulk
+
+    try:
+        solid = bulk(element)
+    except (ValueError, RuntimeError, KeyError, NotImplementedError):
+        return None
+    cutoff = 1.5 * (solid.get_volume() / len(solid)) ** (1.0 / 3.0)
+    for _ in range(4):  # the shortest distance is within reach of the volume per atom
+        d = neighbor_list("d", solid, cutoff, self_interaction=False)
+        if len(d):
+            return float(d.min())
+        cutoff *= 2.0
+    return None
+
+
+def guest_packing_findings(
+    step: int,
+    atoms: Atoms,
+    guest_indices: Sequence[int],
+    element: str,
+    packing: float,
+    metal_distance: float | None = None,
+    *,
+    reported_below: float | None = None,
+) -> list[Finding]:
+    """``guests-closer-than-metal`` warnings: guests packed tighter than in their solid.
+
+    The guests of ``guest_indices`` that are ``element`` are compared pairwise (minimum image on
+    periodic axes); a pair closer than ``packing × metal_distance`` Å is reported, closest
+    first, as :func:`guest_pair_findings` reports its pairs. ``metal_distance`` (Å) defaults to
+    :func:`metal_neighbour_distance` of ``element``; the check is skipped when neither is known.
+    Pairs closer than ``reported_below`` Å (the ``guests-too-close`` alert) are left to that
+    check. E.g. two Li 2.42 Å apart: below 0.9 × 3.02 Å = 2.72 Å (bcc Li).
+    """
+    if metal_distance is None:
+        metal_distance = metal_neighbour_distance(element)
+        sym = reference_states[atomic_numbers[element]] or {}
+        source = (
+            f"the nearest-neighbour distance in {sym.get('symmetry', 'solid')} {element}, "
+            "ASE's reference state"
+        )
+    else:
+        source = f"checks.guest_metal_distance for {element}"
+    if metal_distance is None:
+        return []
+    guests = [int(g) for g in guest_indices if atoms[int(g)].symbol == element]
+    if len(guests) < 2:
+        return []
+    limit = packing * metal_distance
+    dist = _distances(atoms, guests, guests)
+    close = dist < limit
+    if reported_below is not None:
+        close &= dist >= reported_below
+    a, b = np.nonzero(np.triu(close, k=1))
+    pairs = [(float(dist[p, q]), guests[p], guests[q]) for p, q in zip(a, b, strict=True)]
+    return _pair_findings(
+        step,
+        atoms,
+        pairs,
+        severity="warning",
+        code="guests-closer-than-metal",
+        what="guests",
+        limit=round(limit, 3),
+        why=f" = {packing:g} × {metal_distance:.3f} Å, {source}",
     )
 
 
@@ -597,6 +745,7 @@ def step_findings(
     relax_converged: bool | None,
     envelope: float | None,
     moved: Sequence[int] | None = None,
+    guest: str | None = None,
 ) -> list[Finding]:
     """All findings for one step's (relaxed) structure, errors first.
 
@@ -605,7 +754,10 @@ def step_findings(
     and ``connectivity`` False switch theirs off); ``envelope`` (Å, None: off) is passed
     resolved, since its default comes from the placement settings. ``relax_converged`` None: no
     relaxation. Distance checks are skipped when positions are not finite (that itself is an
-    error finding).
+    error finding). ``guest`` is the guest element: two such guests closer than
+    ``guest_packing`` × the nearest-neighbour distance of its solid (``guest_metal_distance``,
+    else :func:`metal_neighbour_distance`) give ``guests-closer-than-metal`` (pairs already below
+    ``guest_alert`` are not repeated); None, ``guest_packing`` None, or no known distance: skipped.
 
     ``moved`` names the host atoms that moved since the facts were taken (e.g.
     :meth:`HostFacts.moved`). None (unknown): every check over the whole structure. Empty: only
@@ -660,6 +812,17 @@ def step_findings(
         out += _envelope(step, atoms, guests, to_host, envelope)
     if settings.guest_alert is not None:
         out += guest_pair_findings(step, atoms, guests, settings.guest_alert)
+    # source: nearest-neighbour distance of the guest's solid, ase.data.reference_states
+    if guest is not None and settings.guest_packing is not None:
+        out += guest_packing_findings(
+            step,
+            atoms,
+            guests,
+            guest,
+            settings.guest_packing,
+            settings.guest_metal_distance,
+            reported_below=settings.guest_alert,
+        )
 
     if not settings.connectivity and settings.rim_alert is None:
         return sorted(out, key=lambda f: -_RANK[f.severity])
@@ -687,3 +850,191 @@ def step_findings(
     if settings.rim_alert is not None:
         out += _rim(step, atoms, guests, edge, interior, settings.rim_distance, settings.rim_alert)
     return sorted(out, key=lambda f: -_RANK[f.severity])
+
+
+# --- the placement decision -------------------------------------------------------------------
+
+#: Potentials this close (V) count as equal in the flat-map count (the placement's tie width).
+_FLAT_SLACK = 1e-9
+
+
+def _site_text(decision: Decision, n: int, site: Site) -> str:
+    """``chosen site 2 (well 5) at (x, y, z) Å, +1.234 V`` (``n`` counts from 0)."""
+    which = "chosen site" if len(decision.chosen) == 1 else f"chosen site {n + 1}"
+    if n < len(decision.chosen_wells):
+        which += f" (well {decision.chosen_wells[n] + 1})"
+    x, y, z = site.position
+    return f"{which} at ({x:.2f}, {y:.2f}, {z:.2f}) Å, {site.potential:+.3f} V"
+
+
+def _region_bounds(decision: Decision) -> str:
+    """The settings that bound the admissible region of ``decision``, as advice."""
+    parts = []
+    if decision.within is not None:
+        parts.append(f"enlarge placement.within (the host envelope, {decision.within:g} Å)")
+    if decision.exclusion:
+        radii = ", ".join(f"{el} {r:g} Å" for el, r in sorted(decision.exclusion.items()))
+        parts.append(f"relax placement.exclusion ({radii})")
+    region = decision.region
+    if region is not None and region.galleries is not None:
+        parts.append(
+            f"reduce placement.gallery_margin ({region.galleries.margin:g} Å, galleries_only)"
+        )
+    if region is not None and (region.boxes or region.spheres):
+        parts.append("enlarge placement.boxes/spheres")
+    if not parts:
+        return ""
+    if len(parts) == 1:
+        return "; " + parts[0]
+    return "; " + ", ".join(parts[:-1]) + (", or " if len(parts) > 2 else " or ") + parts[-1]
+
+
+def _limited(findings: list[Finding], step: int, code: str, what: str) -> list[Finding]:
+    """At most :data:`MAX_PAIRS` of ``findings``, the rest summarised in one more."""
+    if len(findings) <= MAX_PAIRS:
+        return findings
+    more = len(findings) - MAX_PAIRS
+    return findings[:MAX_PAIRS] + [
+        Finding(
+            severity="warning",
+            code=code,
+            message=f"step {step}: {more} more chosen sites {what} not listed",
+            step=step,
+        )
+    ]
+
+
+def decision_findings(
+    step: int, decision: Decision, settings: ChecksConfig, *, charge_mode: str, guest: str
+) -> list[Finding]:
+    """Warnings about a placement decision (see :mod:`ionwell.placement`): pure, no I/O.
+
+    * ``site-on-grid-face`` / ``site-on-region-edge`` (when ``settings.site_boundary``): a chosen
+      site whose well touches the grid's face (``Site.boundary == "grid"``) or the admissible
+      region's boundary (``"region"``). There the site is the lowest point of what the grid or
+      region lets the guest reach, not a minimum of the potential; sites recorded without
+      ``boundary`` are not judged.
+    * ``well-repels-cation``: ``charge_mode == "cation"`` and a chosen site's potential (V) is
+      at or above ``settings.cation_well_max`` (None: off). A cation of charge ``z·e`` has the
+      potential energy ``z·e·V`` there (electrostatics), so a positive potential pushes it away.
+      The map's zero is the engine's: the potential far from a cluster, the cell average for a
+      periodic host.
+    * ``map-too-flat``: at least ``settings.flat_map_wells`` of the recorded candidate wells lie
+      within ``settings.flat_map_tolerance`` V of the deepest (None: off); their order then
+      follows grid noise more than the map. The decision records only ``placement.candidates``
+      wells, so the count is a lower bound when every recorded well ties.
+
+    ``guest`` (element symbol) names the guest in the messages. Each site-level check reports at
+    most :data:`MAX_PAIRS` sites and summarises the rest.
+    """
+    out: list[Finding] = []
+    chosen = list(enumerate(decision.chosen))
+    # source: the definitions of a well and of its boundary in ionwell.placement (Site.boundary)
+    if settings.site_boundary:
+        grid_face = [
+            Finding(
+                severity="warning",
+                code="site-on-grid-face",
+                message=f"step {step}: the {_site_text(decision, n, s)}, lies on the face of the "
+                "potential grid, so the potential may keep falling outside the grid; enlarge "
+                "engine.potential_grid.margin",
+                step=step,
+            )
+            for n, s in chosen
+            if s.boundary == "grid"
+        ]
+        out += _limited(grid_face, step, "site-on-grid-face", "on the grid face")
+        bounds = _region_bounds(decision)
+        region_edge = [
+            Finding(
+                severity="warning",
+                code="site-on-region-edge",
+                message=f"step {step}: the {_site_text(decision, n, s)}, lies on the boundary of "
+                f"the admissible region: it is set by the region's bounds, not by a minimum of "
+                f"the potential{bounds}",
+                step=step,
+            )
+            for n, s in chosen
+            if s.boundary == "region"
+        ]
+        out += _limited(region_edge, step, "site-on-region-edge", "on the region's boundary")
+    # source: electrostatics — a charge q at potential V has the energy q·V, so V > 0 repels q > 0
+    limit = settings.cation_well_max
+    if charge_mode == "cation" and limit is not None:
+        repels = [
+            Finding(
+                severity="warning",
+                code="well-repels-cation",
+                message=f"step {step}: the {_site_text(decision, n, s)}, is at or above "
+                f"checks.cation_well_max ({limit:g} V): the potential there repels a {guest} "
+                "cation, so the site is no well for it (a net positive host charge lifts the "
+                "potential everywhere near the host)",
+                step=step,
+            )
+            for n, s in chosen
+            if s.potential >= limit
+        ]
+        out += _limited(repels, step, "well-repels-cation", "at or above the limit")
+    # source: our heuristic — wells closer in depth than the map's noise are ranked by that noise
+    tol = settings.flat_map_tolerance
+    if tol is not None and decision.candidates:
+        pots = [w.potential for w in decision.candidates]
+        deepest = min(pots)
+        ties = sum(v - deepest <= tol + _FLAT_SLACK for v in pots)
+        if ties >= settings.flat_map_wells:
+            if decision.rule == "screened":
+                remedy = "a finer engine.potential_grid.spacing or a larger placement.screen.top"
+            else:
+                remedy = (
+                    "a finer engine.potential_grid.spacing, the 'screened' placement rule, or "
+                    "more placement.candidates"
+                )
+            if ties == len(pots):
+                many = f"all {ties} recorded candidate wells"
+                cap = (
+                    " (the decision records only the placement.candidates deepest wells, so "
+                    "more may tie)"
+                )
+            else:
+                many, cap = f"{ties} of the {len(pots)} recorded candidate wells", ""
+            out.append(
+                Finding(
+                    severity="warning",
+                    code="map-too-flat",
+                    message=f"step {step}: {many} lie within {tol:g} V of the deepest "
+                    f"({deepest:+.3f} V), so their ranking depends on grid noise{cap}; try "
+                    f"{remedy}",
+                    step=step,
+                )
+            )
+    return out
+
+
+def voltage_findings(
+    steps: Sequence[VoltageStep], floor: float | None, step_of: Mapping[int, int]
+) -> list[Finding]:
+    """A warning for each voltage step (between hull vertices) below ``floor`` (V; None: off).
+
+    ``step_of`` maps a guest count to the step that first reached it (the finding's step). A
+    negative step means the guests of that plateau are bound more weakly than in the guest's
+    reference (e.g. Li metal): insertion there would plate the metal instead (common practice).
+    """
+    if floor is None:
+        return []
+    out = []
+    for v in steps:
+        if v.voltage < floor:
+            out.append(
+                Finding(
+                    severity="warning",
+                    code="negative-voltage" if floor == 0.0 else "voltage-below-floor",
+                    message=(
+                        f"the voltage step from {v.n_from} to {v.n_to} guests is "
+                        f"{v.voltage:.3f} V, below {floor:g} V: inserting these guests costs "
+                        "energy against the guest reference (check μ, the charge mode, and "
+                        "whether the sites are converged)"
+                    ),
+                    step=step_of.get(v.n_to, 0),
+                )
+            )
+    return out

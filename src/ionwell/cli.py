@@ -147,9 +147,11 @@ def _up_to_date(paths) -> bool:
 
     if not is_stopped(paths, last_record(paths.ledger)):
         return False
+    from ionwell.analysis import is_current
+
     outs = [paths.summary, paths.root / "analysis" / "analysis.json"]
     outs.append(paths.root / "analysis" / "report.html")
-    if not all(f.is_file() for f in outs):
+    if not all(f.is_file() for f in outs) or not is_current(paths.root):
         return False
     return min(f.stat().st_mtime for f in outs) >= paths.ledger.stat().st_mtime
 
@@ -352,18 +354,34 @@ def cmd_prune(args: argparse.Namespace) -> int:
 
 
 def cmd_analyse(args: argparse.Namespace) -> int:
-    from ionwell.analysis import analyse
+    from ionwell.analysis import analyse, read_settings_file, set_settings
 
-    summary = analyse(args.campaign)
+    root = Path(args.campaign)
+    if not (root / "campaign.yaml").is_file():
+        raise IonwellError(f"{root}: not a campaign folder (no campaign.yaml)")
+    if args.settings:
+        settings = read_settings_file(args.settings)
+        print(f"analysis settings recorded in {set_settings(root, settings)}")
+    summary = analyse(root)
     print(f"analysis of {summary.steps} steps written to {summary.folder}: "
           + ", ".join(summary.files))  # fmt: skip
     if summary.reference is None:
-        print("  (no analysis.reference in the config: no formation energies, hull or voltage)")
+        print(
+            "  (no guest reference: no formation energies, hull or voltage; give one with "
+            "'ionwell analyse CAMPAIGN --settings FILE', FILE holding reference: {...})"
+        )
     else:
         print(f"  guest μ = {summary.reference.mu:.4f} eV ({summary.reference.source})")
         print(f"  hull vertices at steps {summary.hull_steps}")
         if summary.voltages:
             print("  voltage steps / V: " + ", ".join(f"{v:.3f}" for v in summary.voltages))
+    print(
+        f"  x and capacity per {''.join(f'{k}{v}' for k, v in summary.formula_unit.items())}; "
+        f"charges: {summary.charge_scheme or 'none recorded'}; settings from "
+        f"{summary.settings_source}"
+    )
+    for f in summary.findings:
+        print(f"  {f['severity']}: [{f['code']}] {f['message']}")
     if summary.caution:
         print(f"  caution: {summary.caution}")
     return 0
@@ -493,6 +511,13 @@ def build_parser() -> argparse.ArgumentParser:
 
     an = sub.add_parser("analyse", help="energetics tables and plots (also while running)")
     an.add_argument("campaign", help="campaign folder")
+    an.add_argument(
+        "--settings",
+        metavar="FILE",
+        help="analysis settings (YAML: reference, formula_unit, charge_scheme, rim_width, "
+        "dos_width, ...) to use from now on; kept as analysis.yaml in the campaign folder. "
+        "Recomputes no step.",
+    )
     an.set_defaults(func=cmd_analyse)
 
     rep = sub.add_parser("report", help="one self-contained HTML report of campaign(s)")

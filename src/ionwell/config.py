@@ -268,6 +268,42 @@ class ChecksConfig(_Model):
     rim_alert: float | None = Field(
         0.6, ge=0.0, le=1.0, description="warn when more than this fraction of guests is at the rim"
     )
+    guest_packing: float | None = Field(
+        0.9,
+        gt=0.0,
+        le=2.0,
+        description="warn when two guests are closer than this fraction of the nearest-neighbour "
+        "distance in the guest's elemental solid (None: off)",
+    )
+    guest_metal_distance: float | None = Field(
+        None,
+        gt=0.0,
+        le=10.0,
+        description="nearest-neighbour distance in the guest's elemental solid, Å "
+        "(default: from the ase.data reference state, e.g. bcc Li: 3.02 Å)",
+    )
+    site_boundary: bool = Field(
+        True,
+        description="warn when a chosen site lies on the admissible region's boundary or on "
+        "the potential grid's face",
+    )
+    cation_well_max: float | None = Field(
+        0.0,
+        ge=-100.0,
+        le=100.0,
+        description="cation mode: warn when a chosen well's potential is at or above this, V "
+        "(a cation is repelled there; None: off)",
+    )
+    flat_map_tolerance: float | None = Field(
+        0.02,
+        ge=0.0,
+        le=10.0,
+        description="wells within this of the deepest tie with it for the flat-map check, V "
+        "(None: off)",
+    )
+    flat_map_wells: int = Field(
+        5, ge=2, le=1000, description="warn when at least this many wells tie with the deepest"
+    )
 
 
 class RemedyConfig(_Model):
@@ -388,7 +424,38 @@ class AnalysisConfig(_Model):
     rim_width: float = Field(
         3.0, gt=0.0, description="guests and host atoms this close to a particle's edge are rim, Å"
     )
-    dos_width: float = Field(0.2, gt=0.0, description="Gaussian broadening of the DOS, eV")
+    dos_width: float = Field(0.2, gt=0.0, le=10.0, description="Gaussian broadening of the DOS, eV")
+    formula_unit: dict[str, int] | None = Field(
+        None,
+        description="host formula unit for x and capacity, e.g. {C: 6}; default: "
+        "host.formula_unit, else the host's carbon counted as C6 (terminating H excluded) when "
+        "it has carbon, else the whole host",
+    )
+    charge_scheme: Literal["auto", "mulliken", "lowdin", "meta-lowdin", "iao"] = Field(
+        "auto",
+        description="atomic charges for the charge-transfer tables: 'auto' takes the most "
+        "basis-robust scheme the engine recorded (iao, meta-lowdin, lowdin, then mulliken)",
+    )
+    voltage_floor: float | None = Field(
+        0.0,
+        ge=-100.0,
+        le=100.0,
+        description="flag a voltage step below this, V (a negative step means insertion costs "
+        "energy against the reference; None: off)",
+    )
+
+    @field_validator("formula_unit")
+    @classmethod
+    def _unit(cls, v: dict[str, int] | None) -> dict[str, int] | None:
+        if v is None:
+            return v
+        if not v:
+            raise ValueError("expected at least one element, e.g. {C: 6}")
+        for el, k in v.items():
+            _check_element(el)
+            if k < 1:
+                raise ValueError(f"expected a positive count for {el}, got {k}")
+        return v
 
 
 class StopConfig(_Model):

@@ -54,6 +54,27 @@ class StepDiagnostics(BaseModel):
     host_electrons_gained_interior: float | None = None
     frontier: FrontierLevel | None = None
     frontier_shift: float | None = None  # eV against step 0
+    normal: list[float] | None = None  # stacking normal of the layer analysis (unit vector)
+    host_interior_atoms: int | None = None  # host atoms deeper than the rim width
+    guest_groups: list[str] = []  # per guest: its gallery and/or rim / interior, for figures
+
+
+def _groups(out: StepDiagnostics, guests: Sequence[int], split) -> list[str]:
+    """A label per guest: its gallery (layered hosts) and rim / interior (finite particles)."""
+    where = {}
+    for g in out.galleries:
+        for i in g.guest_indices:
+            where[i] = f"gallery {g.index}"
+    rim = set(split.guest_rim) if split is not None else None
+    labels = []
+    for i in guests:
+        parts = []
+        if out.galleries:
+            parts.append(where.get(i, "outside galleries"))
+        if rim is not None and out.host_interior_atoms:
+            parts.append("rim" if i in rim else "interior")
+        labels.append(" · ".join(parts) or "guest")
+    return labels
 
 
 def diagnose(
@@ -95,12 +116,15 @@ def diagnose(
         out.galleries = list(rep.galleries)
         out.guests_outside = rep.guests_outside
         out.stage, out.staging = rep.stage, rep.staging
+        out.normal = list(rep.normal)
 
     split = occupancy.rim_split(atoms, host, guests, rim_width=rim_width)
     if split is not None:
         out.rim_guests = split.guests_rim
         out.interior_guests = split.guests_interior
         out.guest_depths = [float(d) for d in split.guest_depth]
+        out.host_interior_atoms = len(split.host_interior)
+    out.guest_groups = _groups(out, guests, split)
 
     if charges is not None and pristine_charges is not None:
         ct = occupancy.charge_transfer(

@@ -61,6 +61,19 @@ class Rejection(BaseModel):
 
 
 _LATE_FIELDS = ("job_id", "inputs")
+#: fields of a decision's wells added after the first release: they enter the hash only when set
+_LATE_SITE_FIELDS = ("boundary",)
+
+
+def _drop_unset_late_site_fields(body: dict) -> None:
+    decision = body.get("decision")
+    if not isinstance(decision, dict):
+        return
+    for key in ("candidates", "chosen"):
+        for site in decision.get(key) or ():
+            for name in _LATE_SITE_FIELDS:
+                if isinstance(site, dict) and site.get(name, 0) is None:
+                    del site[name]
 
 
 class LedgerRecord(BaseModel):
@@ -101,6 +114,7 @@ class LedgerRecord(BaseModel):
         # written before them keep their hashes
         late = {name for name in _LATE_FIELDS if getattr(self, name) is None}
         body = self.model_dump(mode="json", exclude={"hash"} | late)
+        _drop_unset_late_site_fields(body)
         canon = json.dumps(body, sort_keys=True, separators=(",", ":"))
         return hashlib.sha256(canon.encode()).hexdigest()
 

@@ -17,8 +17,15 @@ Vocabulary:
   (26-neighbourhood, periodic axes wrapped) is lower. A flat patch of equal values counts once,
   and only when nothing next to it is lower. Each well is refined below the grid spacing; wells
   closer than ``merge`` Å (minimum image) are one well, the deeper. A well whose neighbourhood
-  touches the edge of the admissible region (or of the grid) is marked ``edge``: it is the lowest
-  point there, but the potential may keep falling beyond the edge.
+  (its 3×3×3 grid block) touches the edge of the admissible region or of the grid is marked
+  ``edge``: it is the lowest point there, but the potential may keep falling beyond the edge.
+  ``boundary`` says when the edge sets the site: ``"grid"`` when the block leaves the grid on a
+  non-periodic axis (the site is on the grid box's face; this wins when both apply),
+  ``"region"`` when an inadmissible point of the block is lower than the well — the potential
+  keeps falling across the admissible region's boundary (an exclusion radius, the ``within``
+  envelope, a gallery margin, the user boxes and spheres), so the region, not a minimum of the
+  potential, places the site. A true minimum that merely lies next to the boundary (every
+  inadmissible neighbour higher) is ``edge`` but has no ``boundary``.
 * **order** of wells — ascending refined potential; potentials equal to within 1 nV are tied
   and the tie goes to the lower grid index ``(i, j, k)`` of the well's grid point. Every rule
   that walks the wells "in order" uses this order, so a decision is deterministic for a given
@@ -58,12 +65,13 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Iterable, Sequence
 from itertools import product
+from typing import Any, Literal
 
 import numpy as np
 from ase import Atoms
 from ase.data import atomic_numbers, covalent_radii
 from ase.units import kB
-from pydantic import BaseModel, ConfigDict
+from pydantic import BaseModel, ConfigDict, model_validator
 from scipy import ndimage
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
@@ -129,8 +137,14 @@ class Site(_Model):
     """One well: refined position (Å), potential there (V), and its grid point.
 
     ``degenerate``: within the decision's ``degenerate`` threshold of the deepest well, with at
-    least one other well that close. ``edge``: the well's grid neighbourhood touches the edge of
-    the admissible region or of the grid.
+    least one other well that close. ``edge``: the well's grid neighbourhood (3×3×3 block)
+    touches the edge of the admissible region or of the grid. ``boundary``: the edge sets the
+    site — ``"grid"`` when the block leaves the grid on a non-periodic axis (the site lies on the
+    grid box's face), ``"region"`` when a point of the block beyond the admissible region's
+    boundary is lower than the well (the potential keeps falling across it); None otherwise.
+    A site with a ``boundary`` is always ``edge``; given ``boundary`` alone, ``edge`` follows
+    it. An ``edge`` site without ``boundary`` is a true minimum next to the edge (or a record
+    written before ``boundary`` existed).
     """
 
     position: list[float]
@@ -138,6 +152,17 @@ class Site(_Model):
     index: list[int]
     degenerate: bool = False
     edge: bool = False
+    boundary: Literal["region", "grid"] | None = None
+
+    @model_validator(mode="before")
+    @classmethod
+    def _edge_from_boundary(cls, data: Any) -> Any:
+        if isinstance(data, dict) and data.get("boundary") is not None:
+            if "edge" not in data:
+                return {**data, "edge": True}
+            if not data["edge"]:
+                raise ValueError(f"a site on the {data['boundary']} boundary is an edge site")
+        return data
 
 
 class Galleries(_Model):
@@ -445,18 +470,24 @@ def _neighbour_index(
     return np.ravel_multi_index(nb.T, shape), ok
 
 
+Boundary = Literal["region", "grid"]
+
+
 def _refine(
     grid: Grid,
     mask: np.ndarray,
     idx: np.ndarray,
     admissible: Callable[[np.ndarray], np.ndarray] | None = None,
-) -> tuple[np.ndarray, float, bool]:
-    """Sub-grid minimum near grid point ``idx``: (fractional index, potential, edge).
+) -> tuple[np.ndarray, float, bool, Boundary | None]:
+    """Sub-grid minimum near grid point ``idx``: (fractional index, potential, edge, boundary).
 
     Fits a quadratic to the 3×3×3 block around the point (least squares, in index space, which
     is exact for skewed axes too) and moves to its minimum when the fit is convex, the minimum
     lies within one grid step along every axis, and its value is not above the grid value.
-    ``edge`` is True when the block is not entirely admissible or not entirely inside the grid.
+    ``boundary`` is ``"grid"`` when the block is not entirely inside the grid (it leaves it on a
+    non-periodic axis), else ``"region"`` when an inadmissible point of the block is lower than
+    the grid value at ``idx`` (the potential keeps falling across the region's edge), else None.
+    ``edge``: the block is not entirely inside the grid or not entirely admissible.
     A block that leaves the grid is not fitted. A block that touches inadmissible points is
     fitted only when ``admissible`` (a test of exact positions) is given, and the move is kept
     only when that test admits the refined position and the quadratic fits the block (residual
@@ -465,20 +496,21 @@ def _refine(
     """
     shape = grid.shape
     v0 = float(grid.values[tuple(idx)])
-    block = np.empty(27)
-    edge = False
-    for n, off in enumerate(_BLOCK.astype(np.int64)):
-        nb = idx + off
-        for ax in range(3):
-            if grid.pbc[ax]:
-                nb[ax] %= shape[ax]
-            elif not 0 <= nb[ax] < shape[ax]:
-                return idx.astype(float), v0, True
-        if not mask[tuple(nb)]:
-            if admissible is None:
-                return idx.astype(float), v0, True
-            edge = True
-        block[n] = grid.values[tuple(nb)]
+    nbs = idx + _BLOCK.astype(np.int64)  # (27, 3)
+    for ax in range(3):
+        if grid.pbc[ax]:
+            nbs[:, ax] %= shape[ax]
+        elif nbs[:, ax].min() < 0 or nbs[:, ax].max() >= shape[ax]:
+            return idx.astype(float), v0, True, "grid"
+    where = tuple(nbs.T)
+    inside = mask[where]
+    edge = not inside.all()
+    block = np.asarray(grid.values[where], dtype=float)
+    boundary: Boundary | None = None
+    if edge and float(block[~inside].min()) < v0:
+        boundary = "region"
+    if edge and admissible is None:
+        return idx.astype(float), v0, edge, boundary
     c = _FIT @ block
     g = c[1:4]
     hess = np.array(
@@ -491,13 +523,13 @@ def _refine(
     try:
         np.linalg.cholesky(hess)
     except np.linalg.LinAlgError:
-        return idx.astype(float), v0, edge
+        return idx.astype(float), v0, edge, boundary
     delta = -np.linalg.solve(hess, g)
     if np.max(np.abs(delta)) > 1.0:
-        return idx.astype(float), v0, edge
+        return idx.astype(float), v0, edge, boundary
     value = float(c[0] + g @ delta + 0.5 * delta @ hess @ delta)
     if not value <= v0:
-        return idx.astype(float), v0, edge
+        return idx.astype(float), v0, edge, boundary
     if edge:
         # values inside the excluded zone may rise steeply towards a nucleus: trust the fit only
         # where the quadratic describes the whole block, and only at an admissible position
@@ -505,8 +537,8 @@ def _refine(
         spread = float(block.max() - block.min())
         residual = float(np.sqrt(np.mean((block - _DESIGN @ c) ** 2)))
         if residual > _SMOOTH * spread or not bool(admissible(grid.points(idx + delta))[0]):
-            return idx.astype(float), v0, edge
-    return idx + delta, value, edge
+            return idx.astype(float), v0, edge, boundary
+    return idx + delta, value, edge, boundary
 
 
 def _order_key(value: float, flat: int) -> tuple[float, int]:
@@ -529,8 +561,11 @@ def find_wells(
     are dropped when an equal neighbour outside the patch has a lower neighbour of its own (a
     shelf on a slope, not a well). Each well is refined below the grid spacing (see
     :func:`_refine`; ``admissible``, a test of exact positions, lets wells next to the edge of the
-    region be refined too); positions on periodic axes are wrapped into the cell. Walking the wells in
-    order, a well closer than ``merge`` Å (minimum image) to one already kept is dropped.
+    region be refined too); positions on periodic axes are wrapped into the cell. Each site's
+    ``edge`` says whether its 3×3×3 block leaves the grid or touches a point where ``mask`` is
+    False; ``boundary`` whether that edge sets the site (``"grid"``: the block leaves the grid;
+    ``"region"``: a masked-out point of the block is lower than the well). Walking the wells in order, a well closer than
+    ``merge`` Å (minimum image) to one already kept is dropped.
 
     Order: deepest first by refined potential (equal within 1 nV: tied); ties go to the
     lexicographically smaller grid index ``(i, j, k)``. This order is deterministic for a given
@@ -589,12 +624,18 @@ def find_wells(
     nshape = np.asarray(shape, dtype=float)
     refined = []
     for p in pool:
-        f, value, edge = _refine(grid, mask, idx[p], admissible)
+        f, value, edge, boundary = _refine(grid, mask, idx[p], admissible)
         for ax in range(3):
             if grid.pbc[ax]:
                 f[ax] = f[ax] % nshape[ax]
         pos = grid.origin + f @ grid.axes
-        site = Site(position=pos.tolist(), potential=value, index=idx[p].tolist(), edge=edge)
+        site = Site(
+            position=pos.tolist(),
+            potential=value,
+            index=idx[p].tolist(),
+            edge=edge,
+            boundary=boundary,
+        )
         refined.append((_order_key(value, int(cand[p])), site))
     refined.sort(key=lambda t: t[0])
     sites: list[Site] = []

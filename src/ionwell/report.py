@@ -33,7 +33,7 @@ from pathlib import Path
 from pydantic import BaseModel, Field, ValidationError
 
 import ionwell
-from ionwell.analysis import AnalysisSummary, analyse
+from ionwell.analysis import AnalysisSummary, analyse, is_current
 from ionwell.campaign import CampaignPaths, atomic_write_text, load_frozen, step_label
 from ionwell.checks import Finding
 from ionwell.errors import IonwellError
@@ -45,8 +45,10 @@ __all__ = [
     "Figure",
     "StepFindings",
     "Table",
+    "analysis_findings",
     "comparison_figures",
     "default_output",
+    "figure_caption",
     "gather_campaign",
     "render_page",
     "write_report",
@@ -62,8 +64,15 @@ FIGURE_CAPTIONS: dict[str, str] = {
     "stacking.png": "Layer stacking of the host along the series",
     "rim.png": "Guests at the rim of the particle and in its interior, step by step",
     "charges.png": "Charge transfer between guests and host along the series",
-    "dos.png": "Electronic density of states",
+    "dos.png": "Electronic density of states, each step against its own frontier level",
+    "filling.png": "Where the guests went: filling sequence, side and top views",
+    # the per-step structure views (analysis/structures/step_NNNN.png), by their folder
+    "structures/": "Side and top views of the structure; guests coloured by where they sit, "
+    "those placed in this step outlined",
 }
+
+#: The folder (inside analysis/) of the per-step structure views.
+STRUCTURES_FOLDER = "structures"
 
 #: Captions of the tables ionwell's analysis writes; any other table is captioned by its stem.
 TABLE_CAPTIONS: dict[str, str] = {
@@ -157,18 +166,11 @@ def default_output(campaigns: Sequence[str | Path]) -> Path:
     return Path.cwd() / "report.html"
 
 
-def _analysis_is_stale(paths: CampaignPaths) -> bool:
-    f = paths.root / "analysis" / "analysis.json"
-    if not f.is_file():
-        return True
-    return paths.ledger.is_file() and f.stat().st_mtime < paths.ledger.stat().st_mtime
-
-
 def _load_summary(paths: CampaignPaths) -> AnalysisSummary:
     """The analysis summary, brought up to date first when the ledger is newer."""
     f = paths.root / "analysis" / "analysis.json"
-    if _analysis_is_stale(paths):
-        log.info("%s: analysis missing or older than the ledger; analysing", paths.root)
+    if not is_current(paths.root):
+        log.info("%s: analysis missing or older than its inputs; analysing", paths.root)
         return analyse(paths.root)
     try:
         return AnalysisSummary.model_validate_json(f.read_text())
@@ -204,13 +206,39 @@ def _read_table(path: Path, caption: str) -> Table:
     return Table(name=path.name, caption=caption, header=header, rows=body)
 
 
+def figure_caption(rel: str) -> str:
+    """The caption of the analysis image at ``rel`` (a path relative to analysis/)."""
+    path = Path(rel)
+    if rel in FIGURE_CAPTIONS:
+        return FIGURE_CAPTIONS[rel]
+    if path.name in FIGURE_CAPTIONS:
+        return FIGURE_CAPTIONS[path.name]
+    folder = f"{path.parent.as_posix()}/"
+    if folder in FIGURE_CAPTIONS:
+        m = re.fullmatch(r"step_0*(\d+)", path.stem)
+        where = f"Step {m.group(1)}: " if m else ""
+        return where + FIGURE_CAPTIONS[folder]
+    return path.stem
+
+
 def _analysis_files(folder: Path, summary: AnalysisSummary) -> tuple[list[Path], list[str]]:
-    """The files to show: those the summary lists, in its order, then any other PNG or CSV in
-    the folder (by name). Also the notes on listed files that are missing or of unknown kind."""
+    """The files to show, in this order: the filling-sequence figure, the last step's structure
+    view, the other files the summary lists (in its order), then any other PNG or CSV directly
+    in the folder (by name; subfolders are not scanned). Of the per-step structure views only
+    the last is shown. Also the notes on listed files that are missing or of unknown kind."""
     notes = []
     chosen: list[Path] = []
-    for name in summary.files:
-        p = folder / name
+    seen: set[str] = set()
+    views = set(summary.structures)
+    wanted = [summary.filling] if summary.filling else []
+    wanted += summary.structures[-1:]
+    wanted += [f for f in summary.files if f not in views]
+    for name in wanted:
+        rel = Path(name).as_posix()
+        if rel in seen:
+            continue
+        seen.add(rel)
+        p = folder / rel
         if p.suffix.lower() not in (".png", ".csv"):
             log.debug("%s: not an image or table; not shown", p)
             continue
@@ -218,7 +246,7 @@ def _analysis_files(folder: Path, summary: AnalysisSummary) -> tuple[list[Path],
             notes.append(f"{name} is listed in analysis.json but missing from {folder}")
             continue
         chosen.append(p)
-    seen = {p.name for p in chosen} | set(summary.files)
+    seen |= views
     extra = sorted(
         p
         for p in folder.iterdir()
@@ -282,10 +310,11 @@ def gather_campaign(root: str | Path) -> CampaignReport:
     figures: list[Figure] = []
     tables: list[Table] = []
     for p in files:
+        rel = p.relative_to(folder).as_posix()
         if p.suffix.lower() == ".png":
-            fig = _figure_from_bytes(p.name, FIGURE_CAPTIONS.get(p.name, p.stem), p.read_bytes())
+            fig = _figure_from_bytes(rel, figure_caption(rel), p.read_bytes())
             if fig is None:
-                notes.append(f"{p.name} is not a PNG image; left out")
+                notes.append(f"{rel} is not a PNG image; left out")
             else:
                 figures.append(fig)
         else:
@@ -559,21 +588,34 @@ def render_csv_table(table: Table) -> str:
 
 
 def render_status(st: CampaignStatus) -> str:
-    """The status table (one row per finished step) and the campaign's state."""
+    """The status table (one row per finished step) and the campaign's state.
+
+    E_ins is the energy of inserting the step's new guests against the guest's chemical
+    potential μ, eV per guest; without μ a note says what it needs.
+    """
     header = [
-        "step", f"{st.guest} in", "energy / eV", "ΔE / eV", "SCF it", "next site / V",
-        "time / s", "job", "outcome", "findings",
+        "step", f"{st.guest} in", "energy / eV", "E_ins / eV per guest", "SCF it",
+        "next site / V", "time / s", "job", "outcome", "findings",
     ]  # fmt: skip
     rows = [
         [
-            r.step, r.guests, _num(r.energy, ".6f"), _num(r.delta, ".4f"),
+            r.step, r.guests, _num(r.energy, ".6f"), _num(r.insertion_energy, ".4f"),
             _num(r.scf_iterations, "d"), _num(r.site_potential, ".3f"), f"{r.wall_time:.1f}",
             r.job_id or "–", r.outcome, r.findings if r.findings != "-" else "–",
         ]
         for r in st.rows
     ]  # fmt: skip
     parts = [render_table(header, rows) if rows else '<p class="muted">no finished step yet</p>']
+    if st.mu is None:
+        parts.append(
+            '<p class="muted">E_ins (energy of inserting each new guest against the guest\'s '
+            "chemical potential μ) needs analysis.reference; it stays blank until the analysis "
+            "has established μ.</p>"
+        )
     facts = [("state", st.state)]
+    if st.mu is not None:
+        source = f" ({st.mu_source})" if st.mu_source else ""
+        facts.append(("E_ins against", f"μ = {st.mu:.6f} eV per guest{source}"))
     if st.detail:
         facts.append(("detail", st.detail))
     if st.running_job:
@@ -593,24 +635,48 @@ def _facts(items: Sequence[tuple[str, str]]) -> str:
     return f'<dl class="facts">{body}</dl>'
 
 
-def render_findings(steps: Sequence[StepFindings]) -> str:
-    """Findings of every step: severity, code, message; a step without any says so."""
-    if not steps:
+def analysis_findings(summary: AnalysisSummary) -> list[Finding]:
+    """The findings of the analysis itself (``summary.findings``); unreadable ones are logged
+    and left out."""
+    out = []
+    for item in summary.findings:
+        try:
+            out.append(Finding.model_validate(item))
+        except ValidationError as err:
+            log.warning("analysis finding not readable (%s): %r", err.error_count(), item)
+    return out
+
+
+def _finding_row(step: object, f: Finding, origin: str) -> str:
+    tag = f' <span class="muted">({_e(origin)})</span>' if origin else ""
+    return (
+        f'<tr><td class="num">{_e(step)}</td>'
+        f'<td><span class="sev sev-{_e(f.severity)}">{_e(f.severity)}</span></td>'
+        f"<td><code>{_e(f.code)}</code>{tag}</td><td>{_e(f.message)}</td></tr>"
+    )
+
+
+def render_findings(steps: Sequence[StepFindings], analysis: Sequence[Finding] = ()) -> str:
+    """Findings of every step (severity, code, message), each step's analysis findings after its
+    own (marked "analysis"); a step without any says so."""
+    if not steps and not analysis:
         return '<p class="muted">no finished step yet</p>'
+    by_step: dict[int, list[Finding]] = {}
+    for f in analysis:
+        by_step.setdefault(f.step, []).append(f)
     rows = []
     for s in steps:
+        extra = by_step.pop(s.step, [])
         if s.note:
             rows.append(f'<tr><td class="num">{s.step}</td><td colspan="3" class="muted">'
                         f"{_e(s.note)}</td></tr>")  # fmt: skip
-        elif not s.findings:
+        elif not s.findings and not extra:
             rows.append(f'<tr><td class="num">{s.step}</td><td colspan="3" class="muted">'
                         "no findings</td></tr>")  # fmt: skip
-        for f in s.findings:
-            rows.append(
-                f'<tr><td class="num">{s.step}</td>'
-                f'<td><span class="sev sev-{_e(f.severity)}">{_e(f.severity)}</span></td>'
-                f"<td><code>{_e(f.code)}</code></td><td>{_e(f.message)}</td></tr>"
-            )
+        rows += [_finding_row(s.step, f, "") for f in s.findings]
+        rows += [_finding_row(s.step, f, "analysis") for f in extra]
+    for step in sorted(by_step):
+        rows += [_finding_row(step, f, "analysis") for f in by_step[step]]
     return (
         '<div class="table-wrap"><table><thead><tr><th>step</th><th>severity</th><th>code</th>'
         f"<th>message</th></tr></thead><tbody>{''.join(rows)}</tbody></table></div>"
@@ -648,12 +714,46 @@ def render_reference(summary: AnalysisSummary) -> str:
     return _facts(facts)
 
 
+def _flatten(data: object, prefix: str = "") -> list[tuple[str, str]]:
+    """``(dotted key, shown value)`` of nested settings; None shown as "–"."""
+    if isinstance(data, dict):
+        if not data and prefix:
+            return [(prefix, "–")]
+        out: list[tuple[str, str]] = []
+        for key, value in data.items():
+            out += _flatten(value, f"{prefix}.{key}" if prefix else str(key))
+        return out
+    if data is None:
+        return [(prefix, "–")]
+    if isinstance(data, list | tuple):
+        return [(prefix, ", ".join(str(v) for v in data) or "–")]
+    return [(prefix, str(data))]
+
+
+def render_settings(summary: AnalysisSummary) -> str:
+    """The analysis settings the numbers and figures were made with, and their source."""
+    if not summary.settings:
+        return (
+            '<p class="muted">The analysis did not record its settings (analysis.json from an '
+            "older ionwell); run the analysis again to see them.</p>"
+        )
+    facts = [("taken from", summary.settings_source or "not recorded")]
+    facts += _flatten(summary.settings)
+    return _facts(facts)
+
+
+def formula_text(unit: dict[str, int]) -> str:
+    """A formula unit as text, e.g. ``{"C": 6}`` → ``C6``."""
+    return "".join(f"{el}{k if k != 1 else ''}" for el, k in unit.items())
+
+
 def _sections(rep: CampaignReport) -> list[tuple[str, str]]:
     """(key, title) of the subsections of one campaign; the anchor is ``<campaign id>-<key>``."""
     items = [
         ("status", "Status"),
         ("findings", "Findings"),
         ("reference", "Guest reference"),
+        ("settings", "Analysis settings"),
     ]
     if rep.figures:
         items.append(("plots", "Plots"))
@@ -666,14 +766,19 @@ def _sections(rep: CampaignReport) -> list[tuple[str, str]]:
 def render_campaign(rep: CampaignReport, prefix: str) -> str:
     """The section of one campaign; every id starts with ``prefix``."""
     ids = {key: f"{prefix}-{key}" for key, _ in _sections(rep)}
+    summary = rep.summary
     facts = [
         ("folder", rep.root),
         ("host", rep.host_formula),
         ("guest", f"{rep.guest} ({rep.charge_mode} mode)"),
-        ("engine", rep.engine),
-        ("steps done", str(len(rep.status.rows))),
-        ("state", rep.status.state),
+        ("numbers from", summary.method or rep.engine),
     ]
+    if summary.formula_unit:
+        unit = formula_text(summary.formula_unit)
+        facts.append(("formula unit", f"{unit}: x counts {rep.guest} per {unit}"))
+    if summary.charge_scheme:
+        facts.append(("charges", summary.charge_scheme))
+    facts += [("steps done", str(len(rep.status.rows))), ("state", rep.status.state)]
     out = [f'<section id="{prefix}"><h2>Campaign {_e(rep.name)}</h2>']
     if rep.description:
         out.append(f"<p>{_e(rep.description)}</p>")
@@ -685,11 +790,21 @@ def render_campaign(rep: CampaignReport, prefix: str) -> str:
     for n in rep.notes:
         out.append(f'<div class="note">{_e(n)}</div>')
     out.append(f'<h3 id="{ids["status"]}">Status</h3>{render_status(rep.status)}')
-    out.append(f'<h3 id="{ids["findings"]}">Findings</h3>{render_findings(rep.findings)}')
-    out.append(f'<h3 id="{ids["reference"]}">Guest reference</h3>{render_reference(rep.summary)}')
+    findings = render_findings(rep.findings, analysis_findings(summary))
+    out.append(f'<h3 id="{ids["findings"]}">Findings</h3>{findings}')
+    out.append(f'<h3 id="{ids["reference"]}">Guest reference</h3>{render_reference(summary)}')
+    out.append(f'<h3 id="{ids["settings"]}">Analysis settings</h3>{render_settings(summary)}')
     if rep.figures:
         out.append(f'<h3 id="{ids["plots"]}">Plots</h3>')
         out += [render_figure(f) for f in rep.figures]
+    if summary.structures:
+        n = len(summary.structures)
+        out.append(
+            f'<p class="muted">Side and top views of every step ({n} PNG'
+            f"{'s' if n != 1 else ''}, one per step, the last shown above) are in "
+            f"analysis/{STRUCTURES_FOLDER}/ of the campaign folder "
+            f"({_e(Path(rep.root) / 'analysis' / STRUCTURES_FOLDER)}).</p>"
+        )
     if rep.tables:
         out.append(f'<h3 id="{ids["tables"]}">Tables</h3>')
         out += [render_csv_table(t) for t in rep.tables]

@@ -22,7 +22,7 @@ class StepRow(BaseModel):
     step: int
     guests: int
     energy: float | None
-    delta: float | None
+    insertion_energy: float | None = None  # eV per guest against μ (needs the reference)
     scf_iterations: int | None
     site_potential: float | None
     findings: str
@@ -45,6 +45,33 @@ class CampaignStatus(BaseModel):
     remaining_steps: int | None = None
     eta_hours: float | None = None
     running_job: str | None = None
+    mu: float | None = None  # eV per guest, the guest reference (None: not established yet)
+    charge_mode: str = "neutral"
+    mu_source: str | None = None
+
+
+def _reference(paths: CampaignPaths) -> tuple[float | None, str | None]:
+    """μ of the guest if the analysis established it (``reference.json``); never computes."""
+    f = paths.root / "reference.json"
+    if not f.is_file():
+        return None, None
+    try:
+        data = json.loads(f.read_text())
+        return float(data["mu"]), str(data.get("source", ""))
+    except (OSError, ValueError, KeyError, TypeError):
+        return None, None
+
+
+def insertion_energy(
+    e_before: float, n_before: int, e_after: float, n_after: int, mu: float
+) -> float | None:
+    """Energy of inserting the step's new guests against the guest reference, eV per guest:
+    ``[E(n2) − E(n1) − (n2 − n1)·μ] / (n2 − n1)`` (negative: insertion is favourable; it is
+    −z·e times the voltage of the step). None when no guest was added."""
+    dn = n_after - n_before
+    if dn <= 0:
+        return None
+    return (e_after - e_before - dn * mu) / dn
 
 
 def campaign_status(root: str | Path) -> CampaignStatus:
@@ -53,7 +80,8 @@ def campaign_status(root: str | Path) -> CampaignStatus:
     campaign = load_frozen(paths)
     records = read_ledger(paths.ledger)
     rows: list[StepRow] = []
-    prev_e = None
+    mu, mu_source = _reference(paths)
+    prev = None
     for rec in records:
         site_v = None
         if rec.decision is not None and rec.decision.chosen:
@@ -64,7 +92,11 @@ def campaign_status(root: str | Path) -> CampaignStatus:
                 step=rec.step,
                 guests=rec.guests,
                 energy=rec.energy,
-                delta=None if prev_e is None or rec.energy is None else rec.energy - prev_e,
+                insertion_energy=(
+                    None
+                    if mu is None or prev is None or prev.energy is None or rec.energy is None
+                    else insertion_energy(prev.energy, prev.guests, rec.energy, rec.guests, mu)
+                ),
                 scf_iterations=rec.scf_iterations,
                 site_potential=site_v,
                 findings=findings,
@@ -73,7 +105,7 @@ def campaign_status(root: str | Path) -> CampaignStatus:
                 job_id=rec.job_id,
             )
         )
-        prev_e = rec.energy
+        prev = rec
     running = controller_state(paths)
     detail = None
     if records and records[-1].outcome == "stop":
@@ -112,6 +144,9 @@ def campaign_status(root: str | Path) -> CampaignStatus:
         rows=rows,
         state=state,
         detail=detail,
+        mu=mu,
+        mu_source=mu_source,
+        charge_mode=campaign.guest.charge_mode,
     )
 
 
@@ -206,19 +241,31 @@ def _fmt(v: float | int | None, spec: str) -> str:
 def format_status(st: CampaignStatus) -> str:
     """A fixed-width table a person reads in a terminal."""
     head = (
-        f"{'step':>4}  {st.guest + ' in':>6}  {'energy / eV':>16}  {'dE / eV':>10}  "
+        f"{'step':>4}  {st.guest + ' in':>6}  {'energy / eV':>16}  {'E_ins / eV':>10}  "
         f"{'SCF it':>6}  {'next site / V':>13}  {'time / s':>8}  {'job':>8}  findings"
     )
     lines = [f"campaign {st.name}  ({st.folder})", head, "-" * len(head)]
     for r in st.rows:
         lines.append(
-            f"{r.step:>4}  {r.guests:>6}  {_fmt(r.energy, '16.6f')}  {_fmt(r.delta, '10.4f')}  "
+            f"{r.step:>4}  {r.guests:>6}  {_fmt(r.energy, '16.6f')}  {_fmt(r.insertion_energy, '10.4f')}  "
             f"{_fmt(r.scf_iterations, '6d')}  {_fmt(r.site_potential, '13.3f')}  "
             f"{r.wall_time:8.1f}  {r.job_id or '-':>8}  {r.findings}"
         )
     if not st.rows:
         lines.append("  (no finished step yet)")
     lines.append("")
+    if st.mu is None:
+        lines.append(
+            "E_ins (insertion energy per guest against the guest's chemical potential) needs "
+            "analysis.reference; run 'ionwell analyse' once one is set"
+        )
+    else:
+        lines.append(f"E_ins per guest against μ = {st.mu:.4f} eV ({st.mu_source})")
+        if st.charge_mode == "cation":
+            lines.append(
+                "cation mode: E_ins holds the ionisation energy of the guest and the charging "
+                "of the cluster; it is not an insertion energy of a neutral electrode"
+            )
     if st.potential_model != "exact":
         lines.append(f"site potentials are approximate: the map is {st.potential_model}")
     lines.append(f"state: {st.state}")

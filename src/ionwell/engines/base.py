@@ -65,6 +65,9 @@ class StepResult(BaseModel):
     spin: int = 0
     charges: list[float] | None = Field(None, description="atomic charges, e")
     charge_scheme: str | None = Field(None, description="e.g. 'mulliken'")
+    charge_sets: dict[str, list[float]] | None = Field(
+        None, description="atomic charges (e) per scheme, e.g. {'mulliken': [...], 'iao': [...]}"
+    )
     orbital_energies: list[list[float]] | None = Field(None, description="eV, per spin channel")
     occupations: list[list[float]] | None = None
     fermi_level: float | None = Field(None, description="eV")

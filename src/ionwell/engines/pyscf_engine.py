@@ -30,6 +30,9 @@ Science in brief:
   either exact (one-electron integrals over blocks of grid points, contracted with the density
   matrix) or ``fitted`` (density fitted to an auxiliary basis, evaluated everywhere, then the
   deepest points and every local minimum re-evaluated exactly).
+* atomic charges of the final density in four schemes (:mod:`ionwell.charge_schemes`):
+  Mulliken (also ``StepResult.charges``, ``charge_scheme="mulliken"``), Löwdin, meta-Löwdin and
+  intrinsic atomic orbitals (IAO), all in ``StepResult.charge_sets``.
 
 Units are converted here and only here, with ``ase.units``: PySCF works in hartree and bohr.
 """
@@ -49,6 +52,7 @@ from ase import Atoms
 from ase.calculators.calculator import Calculator, all_changes
 from ase.units import Bohr, Hartree
 
+from ionwell.charge_schemes import compute_charge_sets, occupied_orbitals
 from ionwell.config import PyscfEngineConfig
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.engines.relax import relax_atoms
@@ -663,14 +667,20 @@ def _orbitals(mf) -> tuple[list[list[float]], list[list[float]], float | None, f
     return (e * Hartree).tolist(), o.tolist(), homo, lumo
 
 
-def _mulliken(mf) -> list[float]:
-    """Mulliken atomic charges (e), without printing."""
-    _, _, _, scf, *_ = _pyscf()
-    dm = np.asarray(mf.make_rdm1())
-    if dm.ndim == 3:
-        dm = dm[0] + dm[1]
-    _, chg = scf.hf.mulliken_pop(mf.mol, dm, s=mf.get_ovlp(), verbose=0)
-    return [float(c) for c in chg]
+def _charge_sets(mf, dm: np.ndarray) -> dict[str, list[float]]:
+    """Atomic charges (e) of the converged density ``dm`` in every scheme of
+    :mod:`ionwell.charge_schemes` (Mulliken, Löwdin, meta-Löwdin, IAO).
+
+    The IAOs are built from the orbitals occupied above
+    :data:`~ionwell.charge_schemes.OCCUPIED_THRESHOLD` (fractional, smeared levels included),
+    per spin for UKS. Mulliken errors propagate; another scheme that fails is logged and left
+    out. Matrix operations on the final SCF only: no SCF is rerun.
+    """
+    t0 = time.perf_counter()
+    occ = occupied_orbitals(mf.mo_coeff, mf.mo_occ)
+    sets = compute_charge_sets(mf.mol, dm, occ, s=mf.get_ovlp())
+    log.info("atomic charges (%s) in %.2f s", ", ".join(sets), time.perf_counter() - t0)
+    return sets
 
 
 def _fermi_level(mf, sigma_ev: float) -> float | None:
@@ -807,6 +817,7 @@ class PyscfEngine(InProcessEngine):
         chkfile.dump_scf(mf.mol, str(chk_out), mf.e_tot, mf.mo_energy, mf.mo_coeff, mf.mo_occ)
 
         energies, occupations, homo, lumo = _orbitals(mf)
+        charge_sets = _charge_sets(mf, ks.dm)
         result = StepResult(
             energy=float(mf.e_tot) * Hartree,
             forces=np.asarray(forces, dtype=float).tolist(),
@@ -818,8 +829,9 @@ class PyscfEngine(InProcessEngine):
             positions=np.asarray(final_positions, dtype=float).tolist(),
             charge=int(mol.charge),
             spin=int(mol.spin),
-            charges=_mulliken(mf),
+            charges=charge_sets["mulliken"],
             charge_scheme="mulliken",
+            charge_sets=charge_sets,
             orbital_energies=energies,
             occupations=occupations,
             fermi_level=_fermi_level(mf, cfg.smearing),

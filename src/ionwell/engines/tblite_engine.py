@@ -21,7 +21,8 @@ Science in brief:
   K; 0 is allowed). An SCC that does not converge in ``engine.max_cycle`` iterations is recorded
   with ``scf_converged=False`` and tblite's last (finite) energy and gradient;
 * atomic charges are tblite's Mulliken charges of the SCC density (the charges its
-  electrostatics uses), scheme ``"mulliken (GFN2-xTB)"`` / ``"mulliken (GFN1-xTB)"``;
+  electrostatics uses), scheme ``"mulliken (GFN2-xTB)"`` / ``"mulliken (GFN1-xTB)"``, and the
+  only entry of ``StepResult.charge_sets`` (``"mulliken"``);
 * relaxation uses an ASE optimizer (:func:`ionwell.engines.relax.relax_atoms`) on tblite's
   analytic gradients; each geometry's SCC restarts from the previous geometry's result.
 
@@ -556,6 +557,8 @@ class TbliteEngine(InProcessEngine):
             spin=spin,
             charges=charges.tolist(),
             charge_scheme=f"mulliken ({cfg.method})",
+            # tblite's GFN2-xTB charges are Mulliken-type; it records no other scheme
+            charge_sets={"mulliken": charges.tolist()},
             orbital_energies=energies,
             occupations=occupations,
             fermi_level=fermi,

@@ -652,6 +652,7 @@ def _finish(
     if reason is None:
         decision = _decide(campaign, sp, relaxed, n_host, step, prep.guests, energy_of)
         atomic_write_json(sp.decision, decision.model_dump(mode="json"))
+        findings = _with_decision_findings(campaign, sp, step, findings, decision)
         reason = decide_step.after_decision(campaign, decision)
         if reason is None:
             sites = [s.position for s in decision.chosen]
@@ -730,6 +731,33 @@ def _duration(seconds: float) -> str:
     return f"{seconds / 3600:.1f} h"
 
 
+def _with_decision_findings(
+    campaign: Campaign,
+    sp: StepPaths,
+    step: int,
+    findings: list[checks.Finding],
+    decision: placement.Decision,
+) -> list[checks.Finding]:
+    """The step's findings with those of its placement decision (a site on a boundary, a well
+    that repels a cation, a map too flat to rank), written to ``checks.json``. Idempotent: a
+    body run again after a kill does not add them twice."""
+    extra = checks.decision_findings(
+        step,
+        decision,
+        campaign.checks,
+        charge_mode=campaign.guest.charge_mode,
+        guest=campaign.guest.element,
+    )
+    new = [f for f in extra if f not in findings]
+    if not new:
+        return findings
+    for f in new:
+        log.warning("step %04d: %s", step, f.message)
+    out = sorted([*findings, *new], key=lambda f: -checks.SEVERITY_RANK[f.severity])
+    atomic_write_json(sp.checks, [f.model_dump(mode="json") for f in out])
+    return out
+
+
 def _findings(campaign, paths, step, relaxed, host, result) -> list[checks.Finding]:
     ck = campaign.checks
     facts = _host_facts(paths)
@@ -745,6 +773,7 @@ def _findings(campaign, paths, step, relaxed, host, result) -> list[checks.Findi
         relax_converged=result.relax_converged,
         envelope=ck.envelope if ck.envelope is not None else campaign.placement.within + 1.0,
         moved=moved,
+        guest=campaign.guest.element,
     )
 
 

@@ -88,6 +88,12 @@ def amend(paths: CampaignPaths, campaign: Campaign, sections: list[str]) -> str:
     staged.replace(paths.config)
     log.info("campaign '%s': %s amended after step %s", campaign.name, ", ".join(sections),
              "-" if tip is None else tip.step)  # fmt: skip
+    if "analysis" in sections and (paths.root / "analysis.yaml").is_file():
+        log.warning(
+            "campaign '%s': analysis.yaml in the campaign folder still overrides the amended "
+            "analysis section (set it with 'ionwell analyse --settings', or remove it)",
+            campaign.name,
+        )
     return diff
 
 
