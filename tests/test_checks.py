@@ -600,6 +600,32 @@ def test_site_on_region_edge_names_galleries_boxes_and_spheres() -> None:
     assert "placement.boxes/spheres" in msg and ", or enlarge placement.boxes" in msg
 
 
+def test_site_on_a_gallery_margin_names_the_margin_alone() -> None:
+    # the chosen site (z = 4.20 Å) lies on the lower bound of the gallery (4.2, 6.0): the
+    # margin, not the map, sets its height, and the advice says so instead of listing all bounds
+    d = place(_ABOVE, _CARBON, "Li", within=1.8)
+    region = Region(
+        galleries=Galleries(normal=[0.0, 0.0, 1.0], intervals=[(4.2, 6.0)], margin=1.2),
+    )
+    found = decision_findings(
+        7,
+        d.model_copy(update={"region": region}),
+        ChecksConfig(),
+        charge_mode="neutral",
+        guest="Li",
+    )
+    msg = found[0].message
+    assert "its height is set by the gallery margin (1.2 Å from a layer)" in msg
+    assert "placement.within" not in msg
+    # a gallery far from the site in height: the general advice
+    far = Region(galleries=Galleries(normal=[0.0, 0.0, 1.0], intervals=[(0.5, 3.0)], margin=1.2))
+    found = decision_findings(
+        7, d.model_copy(update={"region": far}), ChecksConfig(), charge_mode="neutral", guest="Li"
+    )
+    assert "its height is set" not in found[0].message
+    assert "placement.within (the host envelope, 1.8 Å)" in found[0].message
+
+
 def test_site_on_grid_face() -> None:
     # a well centred 1.2 Å beyond the top face of the grid (z = 5.8 Å)
     face = _map([(3.0, 3.0, 7.0)], [1.0], [1.0])

@@ -867,8 +867,37 @@ def _site_text(decision: Decision, n: int, site: Site) -> str:
     return f"{which} at ({x:.2f}, {y:.2f}, {z:.2f}) Å, {site.potential:+.3f} V"
 
 
-def _region_bounds(decision: Decision) -> str:
-    """The settings that bound the admissible region of ``decision``, as advice."""
+#: Å: a site this close to a gallery's margin (in height) is placed by the margin
+GALLERY_BOUND_TOLERANCE = 0.3
+
+
+def _gallery_bound(decision: Decision, site: Site) -> str | None:
+    """Advice when the site's height lies on a gallery's margin (None: it does not)."""
+    region = decision.region
+    if region is None or region.galleries is None:
+        return None
+    gal = region.galleries
+    h = float(np.dot(site.position, gal.normal))
+    if gal.period is not None:
+        h = gal.frame + (h - gal.frame) % gal.period
+    for lo, hi in gal.intervals:
+        if min(abs(h - lo), abs(h - hi)) <= GALLERY_BOUND_TOLERANCE:
+            return (
+                f"; its height is set by the gallery margin ({gal.margin:g} Å from a layer): the "
+                "potential keeps falling towards the layer (a map without short-range repulsion, "
+                "such as a point-charge model, does so); reduce placement.gallery_margin, use "
+                "a density-derived map, or rely on the relaxation for the height"
+            )
+    return None
+
+
+def _region_bounds(decision: Decision, site: Site | None = None) -> str:
+    """The settings that bound the admissible region of ``decision``, as advice; the gallery
+    margin alone when ``site`` lies on it."""
+    if site is not None:
+        gallery = _gallery_bound(decision, site)
+        if gallery is not None:
+            return gallery
     parts = []
     if decision.within is not None:
         parts.append(f"enlarge placement.within (the host envelope, {decision.within:g} Å)")
@@ -944,14 +973,13 @@ def decision_findings(
             if s.boundary == "grid"
         ]
         out += _limited(grid_face, step, "site-on-grid-face", "on the grid face")
-        bounds = _region_bounds(decision)
         region_edge = [
             Finding(
                 severity="warning",
                 code="site-on-region-edge",
                 message=f"step {step}: the {_site_text(decision, n, s)}, lies on the boundary of "
                 f"the admissible region: it is set by the region's bounds, not by a minimum of "
-                f"the potential{bounds}",
+                f"the potential{_region_bounds(decision, s)}",
                 step=step,
             )
             for n, s in chosen
