@@ -152,3 +152,18 @@ def test_with_guests_appends_at_the_sites_and_drops_results():
     np.testing.assert_allclose(out.positions[2:], [[0, 0, 2.0], [1.4, 0, 2.0]])
     assert out.calc is None and base.calc is not None
     assert len(decide.with_guests(base, "Li", [])) == 2
+
+
+def test_an_unconverged_scf_never_rejects_the_site():
+    # the SCF remedies retry at the same site; a site is struck out only by a geometric or
+    # bonding error, so a good site is not lost to an SCF that would not converge
+    c = _campaign()
+    prev = _decision(WELLS)
+    kw = {"round_": 0, "placed": [WELLS[0]], "rejected": [], "previous": prev}
+    assert decide.after_checks(c, [_error("scf-not-converged")], **kw) is None
+    # with a geometric error beside it the site goes, for that error alone
+    retry = decide.after_checks(c, [_error("scf-not-converged"), _error()], **kw)
+    assert retry is not None and retry.reason == "atoms-too-close"
+    # and the campaign then stops on the SCF error rather than carrying on
+    reason = decide.check_stop(c, [_error("scf-not-converged")], 3, 1, 1.0)
+    assert reason is not None and "scf-not-converged" in reason

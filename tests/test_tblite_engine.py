@@ -221,3 +221,28 @@ def test_get_engine_builds_tblite_and_ase():
     assert isinstance(get_engine(campaign), TbliteEngine)
     ase_cfg = AseEngineConfig(calculator="ase.calculators.emt.EMT")
     assert isinstance(get_engine(SimpleNamespace(engine=ase_cfg, relax=NO_RELAX)), AseEngine)
+
+
+def test_unconverged_scc_is_retried_with_the_engines_own_remedies(tmp_path):
+    # An SCC capped at 2 iterations cannot converge benzene (tblite says so); the campaign's
+    # SCF remedies, in the tight-binding engine's own terms, retry it at the same structure:
+    # more SCC cycles first, which converges (tblite's own default cap is 250 cycles).
+    from ionwell.config import parse_campaign
+    from ionwell.engines.run import run_engine, scf_variants
+
+    campaign = parse_campaign(
+        {
+            "name": "remedy",
+            "host": {"builder": {"kind": "flake", "layers": 1, "shells": 1}},
+            "engine": {"kind": "tblite", "max_cycle": 2},
+            "relax": {"enabled": False},
+        }
+    )
+    names = [what for what, _ in scf_variants(campaign)]
+    # no level shift in tblite: the remedy list skips it
+    assert names == ["as configured", "max_cycle 300", "electronic temperature 1160 K"]
+    out = run_engine(
+        campaign, molecule("C6H6"), tmp_path, ComputeContext(step=0, charge=0, potential=False)
+    )
+    assert out.result.scf_converged
+    assert out.remedies == ["SCF retry with max_cycle 300: converged"]

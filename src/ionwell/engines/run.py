@@ -39,12 +39,36 @@ class Computed(BaseModel):
     parse_error: str | None = None
 
 
+def _tblite_remedy(eng, rem, name: str) -> tuple[str, dict] | None:
+    """The tight-binding engine's version of a remedy (None: it has none): more SCC cycles, or
+    a higher electronic temperature (Fermi smearing, ``smearing`` eV as kB·T)."""
+    from ase.units import kB
+
+    if name == "more_cycles":
+        n = max(rem.more_cycles, eng.max_cycle)
+        return f"max_cycle {n}", {"max_cycle": n}
+    if name == "smearing":
+        t = max(eng.electronic_temperature, rem.smearing / kB)
+        return f"electronic temperature {t:.0f} K", {"electronic_temperature": t}
+    return None  # tblite has no level shift
+
+
 def scf_variants(campaign) -> list[tuple[str, object]]:
-    """The campaign's engine as configured, then each configured SCF remedy (embedded DFT)."""
+    """The campaign's engine as configured, then each configured SCF remedy, in the engine's
+    own terms (embedded DFT: cycles, level shift, smearing; tight binding: cycles, electronic
+    temperature). Engines without SCF settings ionwell knows get no variants."""
     eng = campaign.engine
     rem = campaign.remedies
     out = [("as configured", campaign)]
-    if eng.kind != "pyscf":  # the SCF settings below are the embedded engine's
+    if eng.kind == "tblite":
+        for name in rem.scf:
+            got = _tblite_remedy(eng, rem, name)
+            if got is not None:
+                what, upd = got
+                variant = campaign.model_copy(update={"engine": eng.model_copy(update=upd)})
+                out.append((what, variant))
+        return out
+    if eng.kind != "pyscf":
         return out
     for name in rem.scf:
         if name == "more_cycles":

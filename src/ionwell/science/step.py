@@ -77,6 +77,14 @@ def _errors(findings: Sequence[Finding]) -> list[Finding]:
     return [f for f in findings if f.severity == "error"]
 
 
+#: errors another site can cure: the structure the site made is wrong (geometry or bonding).
+#: An SCF that did not converge is not one of them: the engine's SCF remedies retry it at the
+#: same site, and if they fail the campaign stops — a good site is never struck out for it.
+SITE_ERRORS = frozenset(
+    {"atoms-too-close", "guest-on-host-atom", "host-fragmented", "non-finite-positions"}
+)
+
+
 def after_checks(
     campaign: Campaign,
     findings: Sequence[Finding],
@@ -89,6 +97,9 @@ def after_checks(
 ) -> Retry | None:
     """Whether a failed check rejects the step's new sites, and what is tried instead.
 
+    Only geometric or bonding errors (:data:`SITE_ERRORS`) reject a site; an unconverged SCF
+    does not (the engine's SCF remedies already retried it at the same site).
+
     ``round_`` counts the rejections already made in this step, ``placed`` are the sites this
     round computed, ``rejected`` those struck out before, ``previous`` the previous step's
     decision (its candidates are the wells to fall back on, in depth order, keeping the
@@ -97,7 +108,7 @@ def after_checks(
     (no error, the remedy is off, the rounds are used up, nothing new was placed, or no untried
     well is left); the checks then decide the step as they stand.
     """
-    errors = _errors(findings)
+    errors = [f for f in _errors(findings) if f.code in SITE_ERRORS]
     rem = campaign.remedies
     if not errors or not rem.reject_site or round_ >= rem.max_rejects or not placed:
         return None
