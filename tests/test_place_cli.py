@@ -155,3 +155,48 @@ def test_screened_is_refused_and_bad_values_name_the_option(cube, capsys):
         with pytest.raises(SystemExit):
             _parser().parse_args(["place", str(cube), *bad])
     capsys.readouterr()
+
+
+def _periodic_case(tmp_path):
+    """A 6 Å cubic cell, 24 points per axis spanning it exactly (a periodic code's layout): one
+    C near the x = 0 face, the deepest well just inside the opposite face (0.3 Å from the C
+    through the face), a shallower well in the middle of the cell."""
+    carbon = Atoms("C", positions=[[0.2, 3.0, 3.0]])
+    deep, middle = (5.9, 3.0, 3.0), (3.0, 3.0, 3.0)
+
+    def field(points):
+        return _field(points, atoms=carbon, centres=[deep, middle], depths=[1.0, 0.5],
+                      widths=[0.5, 0.5])  # fmt: skip
+
+    return _cube(tmp_path / "cell.cube", field, carbon, n=24, spacing=0.25), deep, middle
+
+
+def test_periodic_map_excludes_a_well_next_to_an_atom_through_the_cell_face(tmp_path, capsys):
+    # minimum image (common practice for periodic cells): the deep well is 0.3 Å from the C
+    # across the x face, inside its exclusion radius, so with periodicity stated it is not
+    # admissible and the middle well is chosen; without it the deep well wins
+    path, deep, middle = _periodic_case(tmp_path)
+    common = [str(path), "--within", "10", "--sign", "potential", "--json"]
+    status, text = _run(common, capsys)
+    assert status == 0
+    assert np.allclose(json.loads(text)["chosen"][0]["position"], deep, atol=0.15)
+    status, text = _run([*common, "--periodic", "xyz"], capsys)
+    assert status == 0
+    assert np.allclose(json.loads(text)["chosen"][0]["position"], middle, atol=0.15)
+    # a structure with the cell says the same without --periodic (the map spans its cell)
+    from ase.io import write
+
+    cell = Atoms("C", positions=[[0.2, 3.0, 3.0]], cell=[6.0, 6.0, 6.0], pbc=True)
+    write(tmp_path / "cell.extxyz", cell)
+    status, text = _run([*common, "--structure", str(tmp_path / "cell.extxyz")], capsys)
+    assert np.allclose(json.loads(text)["chosen"][0]["position"], middle, atol=0.15)
+
+
+def test_periodic_axes_option_is_checked():
+    with pytest.raises(SystemExit):
+        _parser().parse_args(["place", "x.cube", "--periodic", "xq"])
+    args = _parser().parse_args(["place", "x.cube", "--periodic", "xy"])
+    assert args.periodic == (True, True, False)
+    assert _parser().parse_args(["place", "x.cube", "--periodic", "none"]).periodic == (
+        False, False, False,
+    )  # fmt: skip

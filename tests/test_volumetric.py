@@ -560,3 +560,38 @@ def test_a_map_written_in_a_shifted_frame_is_moved_back(tmp_path):
     other.positions[0] += [0.5, 0, 0]
     with pytest.raises(EngineOutputError, match="step 1: .*not the structure's atoms"):
         read_potential(path, spec, atoms=other, step=1)
+
+
+def test_a_map_spanning_a_periodic_cell_is_periodic_and_wrapped_atoms_do_not_shift_it(tmp_path):
+    # A periodic code writes its cube on n points of step cell/n (the next point would be the
+    # next cell's first) and may list the atoms wrapped into its cell. The map then belongs to
+    # the periodic structure unshifted: whole lattice vectors are no shift (minimum image,
+    # common practice), and the grid is periodic along the axes the structure is.
+    from ionwell.engine_config import PotentialSpec
+    from ionwell.grid import Grid, write_cube
+    from ionwell.volumetric import periodic_like, read_potential
+
+    cell = np.diag([4.0, 4.0, 6.0])
+    atoms = Atoms("Li", positions=[[4.5, 1.0, 3.0]], cell=cell, pbc=[True, True, False])
+    n = (16, 16, 20)
+    axes = np.diag([4.0 / 16, 4.0 / 16, 6.0 / 19])  # z spans 6 Å with 20 points, ends repeated
+    rng = np.random.default_rng(1)
+    values = rng.normal(size=n)
+    grid = Grid(np.zeros(3), axes, values)
+    wrapped = atoms.copy()
+    wrapped.wrap()  # x = 0.5: the file lists the atom one lattice vector down
+    write_cube(tmp_path / "p.cube", grid, wrapped)
+    got = read_potential(
+        tmp_path / "p.cube", PotentialSpec(file="p.cube", unit="hartree"), atoms=atoms
+    )
+    assert got.pbc == (True, True, False)  # z is not periodic in the structure
+    assert got.shape == n  # no plane dropped on x, y (n steps span the cell); z not periodic
+    assert np.allclose(got.origin, 0.0, atol=1e-6)  # not moved by the lattice vector
+    # z periodic too: (n - 1) steps span the cell, so the repeated end plane is dropped
+    bulk = atoms.copy()
+    bulk.pbc = True
+    again = periodic_like(Grid(np.zeros(3), axes, values), bulk)
+    assert again.pbc == (True, True, True) and again.shape == (16, 16, 19)
+    # a grid that does not span the cell stays as it was
+    small = Grid(np.zeros(3), axes * 0.5, values)
+    assert periodic_like(small, bulk).pbc == (False, False, False)

@@ -21,12 +21,13 @@ import json
 import math
 from pathlib import Path
 
+import numpy as np
 from ase import Atoms
 from pydantic import ValidationError
 
 from ionwell import grid as gridmod
 from ionwell.config import PlacementConfig
-from ionwell.errors import GridError, PlacementError, StructureError
+from ionwell.errors import GridError, IonwellError, PlacementError, StructureError
 from ionwell.placement import Decision, decide
 
 __all__ = ["add_parser", "run"]
@@ -76,6 +77,18 @@ def _kelvin(text: str) -> float:
     return value
 
 
+def _axes(text: str) -> tuple[bool, bool, bool]:
+    """``xyz``, ``xy``, ``z``, ``none`` ... as periodicity flags of the three grid axes."""
+    t = text.strip().lower()
+    if t in ("none", "no", "-", ""):
+        return (False, False, False)
+    if not set(t) <= set("xyz") or len(set(t)) != len(t):
+        raise argparse.ArgumentTypeError(
+            f"expected the periodic axes as letters of 'xyz' (e.g. xyz, xy) or 'none', got {text!r}"
+        )
+    return ("x" in t, "y" in t, "z" in t)
+
+
 def positive_count(text: str) -> int:
     """argparse type: a whole number ≥ 1 (one clear message otherwise)."""
     try:
@@ -114,7 +127,8 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
     p.add_argument(
         "potential",
         metavar="POTENTIAL",
-        help="Gaussian cube file (hartree/e), or a .npz grid written by ionwell (volts)",
+        help="Gaussian cube file (hartree/e), XSF file, .npy grid with its JSON sidecar, or a "
+        ".npz grid written by ionwell (volts)",
     )
     p.add_argument(
         "--structure",
@@ -122,6 +136,14 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
         help="atoms in any ASE-readable format (default: the atoms in the cube file)",
     )
     p.add_argument("--guest", metavar="EL", default="Li", help="guest element (default: Li)")
+    p.add_argument(
+        "--periodic",
+        metavar="AXES",
+        type=_axes,
+        help="periodic axes of the map, e.g. xyz (a crystal), xy (a slab) or none; the period "
+        "along an axis is its point count times its step (default: periodic where --structure "
+        "is and the map spans its cell; a cube alone cannot say)",
+    )
     p.add_argument(
         "--exclusion",
         metavar="EL=ANGSTROM",
@@ -233,11 +255,56 @@ def _load(args: argparse.Namespace) -> tuple[gridmod.Grid, Atoms, str]:
         grid = gridmod.load_npz(path)
         atoms = _read_structure(Path(args.structure))
         sign = "potential" if args.sign == "auto" else args.sign
+    elif path.suffix.lower() in (".xsf", ".npy"):
+        return _load_general(args, path)
     else:
         grid, atoms = gridmod.read_cube(path)
         if args.structure:
             atoms = _read_structure(Path(args.structure))
         sign = gridmod.detect_sign(grid, atoms) if args.sign == "auto" else args.sign
+    grid, atoms = _periodicity(args, grid, atoms)
+    return gridmod.orient(grid, atoms, sign), atoms, sign
+
+
+def _periodicity(args: argparse.Namespace, grid: gridmod.Grid, atoms: Atoms):
+    """The grid's periodicity: stated with ``--periodic`` (the atoms then get the grid's cell
+    on those axes, so exclusion uses the minimum image), else taken from a periodic structure
+    whose cell the grid spans."""
+    from ionwell.volumetric import periodic_like, with_periodicity
+
+    if args.periodic is not None:
+        grid = with_periodicity(grid, args.periodic)
+        if any(args.periodic):
+            atoms = atoms.copy()
+            cell = atoms.cell.array.copy()
+            for ax in range(3):
+                if args.periodic[ax] and not atoms.pbc[ax]:
+                    cell[ax] = grid.shape[ax] * np.asarray(grid.axes[ax], dtype=float)
+            atoms.cell = cell
+            atoms.pbc = [bool(a) or bool(b) for a, b in zip(atoms.pbc, args.periodic, strict=True)]
+    elif atoms.pbc.any():
+        grid = periodic_like(grid, atoms)
+    return grid, atoms
+
+
+def _load_general(args: argparse.Namespace, path: Path):
+    """XSF and ``.npy`` + sidecar maps, through the campaign's own map reader."""
+    from ionwell.engine_config import PotentialSpec
+    from ionwell.volumetric import read_potential
+
+    atoms = _read_structure(Path(args.structure)) if args.structure else None
+    if atoms is None and path.suffix.lower() == ".npy":
+        raise GridError(f"{path}: a .npy grid holds no atoms; give them with --structure FILE")
+    # read as stored (the sign decided below, as for a cube)
+    spec = PotentialSpec(file=path.name, sign="potential")
+    try:
+        grid = read_potential(path, spec, atoms=atoms, pbc=args.periodic)
+    except IonwellError as err:
+        raise GridError(str(err)) from None
+    if atoms is None:  # an XSF carries its atoms
+        atoms = _read_structure(path)
+    grid, atoms = _periodicity(args, grid, atoms)
+    sign = gridmod.detect_sign(grid, atoms) if args.sign == "auto" else args.sign
     return gridmod.orient(grid, atoms, sign), atoms, sign
 
 

@@ -71,6 +71,7 @@ import json
 import logging
 import math
 import zipfile
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Literal
 
@@ -141,8 +142,14 @@ def read_potential(
     spec: PotentialSpec,
     atoms: Atoms | None = None,
     step: int | None = None,
+    pbc: Sequence[bool] | None = None,
 ) -> Grid:
     """Read a potential map and return it in volts, in the potential convention.
+
+    Periodicity: a format that cannot say it (cube, npy without ``pbc``) is periodic along an
+    axis where ``atoms`` is periodic and the grid spans its cell vector (:func:`periodic_like`);
+    ``pbc`` states it outright (:func:`with_periodicity`). A map whose file lists the atoms
+    wrapped into the cell, or shifted by lattice vectors, is not moved by those vectors.
 
     Args:
         path: the map file (already resolved; ``spec.file`` is not used here).
@@ -151,6 +158,7 @@ def read_potential(
         atoms: the structure the map belongs to, for ``sign: auto`` when the file carries no
             atoms (npy/npz); Å, in the same frame as the grid.
         step: step number, named in error messages.
+        pbc: periodicity of the grid's three axes, stated by the caller (None: as read).
 
     Returns:
         The grid: values in volts (float64, or float32 when an npy/npz array is float32),
@@ -227,6 +235,10 @@ def read_potential(
         grid = orient(grid, reference, sign)
     except GridError as err:
         raise fail.grid_error(err) from None
+    if atoms is not None and atoms.pbc.any():
+        grid = periodic_like(grid, atoms)
+    if pbc is not None:
+        grid = with_periodicity(grid, pbc)
     if file_atoms is not None and atoms is not None:
         grid = _align(grid, file_atoms, atoms, fail)
     logger.debug(
@@ -237,6 +249,43 @@ def read_potential(
 
 #: Largest deviation (Å) from one common shift for the file's atoms to count as ours, moved.
 FRAME_TOLERANCE = 2e-3
+
+#: Å: a grid spans a cell vector when ``n · axis`` (or ``(n − 1) · axis`` with a repeated end
+#: plane) equals it to within this distance.
+SPAN_TOLERANCE = 1e-4
+
+
+def periodic_like(grid: Grid, atoms: Atoms) -> Grid:
+    """The grid made periodic along each axis where ``atoms`` is periodic and the grid spans
+    its cell vector: ``n`` points of step ``cell / n`` (the usual layout of a periodic code's
+    cube: the end point is the start of the next cell), or ``n`` points whose last repeats the
+    first (``(n − 1)`` steps span the cell; the repeated plane is dropped). Other axes stay as
+    they are."""
+    cell = np.asarray(atoms.cell.array, dtype=float)
+    pbc = list(grid.pbc)
+    drop = [False, False, False]
+    for ax in range(3):
+        if pbc[ax] or not atoms.pbc[ax]:
+            continue
+        n = grid.shape[ax]
+        step = np.asarray(grid.axes[ax], dtype=float)
+        if np.allclose(n * step, cell[ax], rtol=0.0, atol=SPAN_TOLERANCE):
+            pbc[ax] = True
+        elif n > 2 and np.allclose((n - 1) * step, cell[ax], rtol=0.0, atol=SPAN_TOLERANCE):
+            pbc[ax], drop[ax] = True, True
+    if tuple(pbc) == tuple(grid.pbc):
+        return grid
+    values = grid.values[tuple(slice(None, -1) if d else slice(None) for d in drop)]
+    logger.info("map periodic along axes %s (it spans the structure's cell)", pbc)
+    return Grid(origin=grid.origin, axes=grid.axes, values=values, pbc=tuple(pbc))
+
+
+def with_periodicity(grid: Grid, pbc: Sequence[bool]) -> Grid:
+    """The grid with the stated periodicity (period ``n · axes[i]`` along a periodic axis)."""
+    flags = tuple(bool(x) for x in pbc)
+    if len(flags) != 3:
+        raise GridError(f"periodicity: expected three flags (x, y, z), got {list(pbc)}")
+    return Grid(origin=grid.origin, axes=grid.axes, values=grid.values, pbc=flags)  # type: ignore[arg-type]
 
 
 def _align(grid: Grid, file_atoms: Atoms, atoms: Atoms, fail: _Fail) -> Grid:
@@ -262,6 +311,10 @@ def _align(grid: Grid, file_atoms: Atoms, atoms: Atoms, fail: _Fail) -> Grid:
         d = d[0] + find_mic(d - d[0], atoms.cell, atoms.pbc)[0]
     shift = d.mean(axis=0)
     worst = float(np.abs(d - shift).max())
+    if atoms.pbc.any():  # whole lattice vectors are no shift of a periodic structure
+        vecs = np.asarray(atoms.cell.array, dtype=float)[atoms.pbc]
+        coef = np.linalg.lstsq(vecs.T, shift, rcond=None)[0]
+        shift = shift - np.round(coef) @ vecs
     if worst > FRAME_TOLERANCE:
         raise fail(
             f"the file's atoms are not the structure's atoms moved by one shift (off by up to "
