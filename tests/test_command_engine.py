@@ -464,3 +464,287 @@ def test_shipped_definitions_write_their_inputs(tmp_path):
     with open(tmp_path / "quantum-espresso" / "pw.in") as f:
         namelist, _ = read_fortran_namelist(f)
     assert namelist["system"]["tot_charge"] == 1
+
+
+# ---------------------------------------------------------------------------------------------
+# the cell rule, version capture, the warm-start rule, frozen definitions (fast)
+
+
+def _template_engine(tmp: Path, template: str, **over):
+    """A command engine whose input is ``template`` (nothing is run)."""
+    (tmp / "box.tmpl").write_text(template)
+    engine = {**COMMAND, "input": {"file": "job.inp", "template": "box.tmpl"}, **over}
+    return get_engine(_campaign(tmp, engine))
+
+
+def test_cell_rule_boxes_a_structure_without_a_periodic_cell(tmp_path):
+    from ionwell.engine_config import CellSpec
+    from ionwell.engines.command_engine import needs_box, program_frame
+
+    spec = CellSpec(box={"vacuum": 5.0})
+    ring = molecule("C6H6")  # no cell, not periodic
+    ring.positions += [3.0, -1.0, 2.0]
+    a, shift, boxed = program_frame(ring, spec)
+    extent = np.ptp(ring.positions, axis=0)
+    assert boxed and needs_box(ring)
+    np.testing.assert_allclose(a.cell.lengths(), extent + 10.0)
+    np.testing.assert_allclose(np.asarray(a.cell), np.diag(extent + 10.0))  # orthorhombic
+    # atoms centred: 5 Å of vacuum on each side along every axis
+    np.testing.assert_allclose(a.positions.min(axis=0), 5.0)
+    np.testing.assert_allclose(a.cell.lengths() - a.positions.max(axis=0), 5.0)
+    np.testing.assert_allclose(a.positions - shift, ring.positions)
+    assert not a.pbc.any()  # pbc flags as the structure has them
+
+    # a non-periodic structure with a cell (the H2 probe) gets the box too
+    probe = Atoms("H2", positions=[[4, 4, 4], [4, 4, 4.74]], cell=[8, 8, 8])
+    a, _, boxed = program_frame(probe, spec)
+    assert boxed and np.allclose(a.cell.lengths(), [10.0, 10.0, 10.74])
+    # periodic along x with no full cell: boxed; flags kept
+    half = Atoms(
+        "C2", positions=[[0, 0, 0], [1.4, 0, 0]], cell=[2.8, 0, 0], pbc=[True, False, False]
+    )
+    a, _, boxed = program_frame(half, spec)
+    assert boxed and a.pbc.tolist() == [True, False, False] and a.cell.rank == 3
+    # a periodic structure with a full cell keeps it, unshifted
+    graphite = Atoms(
+        "C2",
+        positions=[[0, 0, 0], [1.23, 0.71, 0]],
+        cell=[[2.46, 0, 0], [-1.23, 2.13, 0], [0, 0, 8]],
+    )
+    graphite.pbc = [True, True, False]
+    a, shift, boxed = program_frame(graphite, spec)
+    assert not boxed and not shift.any()
+    np.testing.assert_allclose(np.asarray(a.cell), np.asarray(graphite.cell))
+
+
+def test_box_placeholder_and_input_agree_on_every_step(tmp_path):
+    engine = _template_engine(
+        tmp_path,
+        "box ${box}\nboxed ${boxed}\nperiodic ${periodic}\ncell\n${cell}\n${structure}\n",
+        cell={
+            "box": {"vacuum": 6.0},
+            "placeholders": {"periodic": {"box": "NONE", "periodic": "XY"}},
+        },
+    )
+    ring = molecule("C6H6")
+    work = tmp_path / "step0"
+    engine.prepare(ring, work, ComputeContext(step=0))
+    lines = (work / "job.inp").read_text().splitlines()
+    box = np.array(lines[0].split()[1:], dtype=float)
+    np.testing.assert_allclose(box, np.ptp(ring.positions, axis=0) + 12.0, atol=1e-5)
+    assert lines[1] == "boxed true" and lines[2] == "periodic NONE"
+    cell = np.array([x.split() for x in lines[4:7]], dtype=float)
+    np.testing.assert_allclose(np.diag(cell), box, atol=1e-5)
+    pos = np.array([x.split()[1:] for x in lines[7:]], dtype=float)
+    assert (pos.min(axis=0) > 5.99).all() and (box - pos.max(axis=0) > 5.99).all()
+    state = json.loads((work / "command.json").read_text())
+    assert state["frame"]["boxed"] and np.allclose(pos - state["frame"]["shift"], ring.positions)
+    # the launcher's placeholders (argv) come from the same rule
+    assert engine.placeholder_values(work)["box"] == lines[0].split(None, 1)[1]
+    # the input recorded for the step keeps the structure as it came in (no cell invented)
+    from ase.io import read
+
+    kept = read(work / "input.extxyz")
+    np.testing.assert_allclose(kept.positions, ring.positions)
+    # a periodic structure: its own cell, the 'periodic' value
+    graphite = Atoms("C2", positions=[[0, 0, 0], [1.23, 0.71, 0]], pbc=[True, True, True])
+    graphite.cell = [[2.46, 0, 0], [-1.23, 2.13, 0], [0, 0, 6.7]]
+    engine.prepare(graphite, tmp_path / "per", ComputeContext(step=0))
+    text = (tmp_path / "per" / "job.inp").read_text().splitlines()
+    assert text[1] == "boxed false" and text[2] == "periodic XY"
+    np.testing.assert_allclose(np.array(text[0].split()[1:], float), graphite.cell.lengths(), 1e-5)
+
+
+def test_placeholder_names_may_not_shadow_builtins(tmp_path):
+    bad = {**COMMAND, "cell": {"placeholders": {"box": {"box": 1, "periodic": 2}}}}
+    with pytest.raises(ConfigError, match="built-in placeholder"):
+        _campaign(tmp_path, bad)
+
+
+def test_map_and_result_are_in_the_frame_of_the_structure_that_came_in(water_run, tmp_path):
+    """The runner computed water in the box's frame; the map comes back in the caller's: its
+    maximum (potential convention: the nuclear Coulomb singularities) lies at a nucleus of the
+    structure that was passed in, not one shifted by the box, and the structure handed on has
+    no invented cell."""
+    _, engine, work, atoms = water_run
+    state = json.loads((work / "command.json").read_text())
+    assert state["frame"]["boxed"] and np.linalg.norm(state["frame"]["shift"]) > 1.0
+    result, grid = engine.collect(work)
+    top = grid.points(np.array(np.unravel_index(np.argmax(grid.values), grid.shape)))
+    nearest = np.linalg.norm(atoms.positions - top, axis=1).min()
+    assert nearest < 0.3  # at a nucleus, within one grid spacing (0.3 Å)
+    np.testing.assert_allclose(result.positions, atoms.positions)
+    assert result.cell is None and result.pbc == [False, False, False]
+    # the structure handed on is boxed again at the next step (every step, not only step 0)
+    nxt = tmp_path / "next"
+    engine.prepare(result.atoms(), nxt, ComputeContext(step=3))
+    assert json.loads((nxt / "command.json").read_text())["frame"]["boxed"]
+
+
+def test_version_is_what_the_program_printed(water_run, tmp_path):
+    campaign, _, work, _ = water_run
+    copy = tmp_path / "engine"
+    shutil.copytree(work, copy)
+    spec = {"file": "job.log", "regex": r"^pyscf-runner \(PySCF ([^)]*)\)"}
+    engine = get_engine(
+        _campaign(tmp_path, {**COMMAND, "outputs": {**COMMAND["outputs"], "version": spec}})
+    )
+    log = copy / "job.log"
+    text = log.read_text()
+    # the runner prints its version line with PySCF's version, when PySCF exposes one there
+    log.write_text(text.replace("pyscf-runner (PySCF", "pyscf-runner (PySCF 2.6.2", 1))
+    result, _ = engine.collect(copy)
+    assert result.code_version == "2.6.2" and result.notes == []
+    # the last match counts
+    log.write_text(log.read_text() + "pyscf-runner (PySCF 9.9.9)\n")
+    assert engine.collect(copy)[0].code_version == "9.9.9"
+    # a version line naming no version, or no such line: the static version, and a note
+    log.write_text(text.replace("pyscf-runner (PySCF 2.6.2", "pyscf-runner (PySCF "))
+    result, _ = engine.collect(copy)
+    assert result.code_version == "test" and "names no version" in result.notes[0]
+    log.write_text(text.replace("pyscf-runner (PySCF", "runner ("))
+    result, _ = engine.collect(copy)
+    assert result.code_version == "test"
+    assert any("no line matching" in n and "version 'test'" in n for n in result.notes)
+    with pytest.raises(ConfigError, match="capturing group"):
+        _campaign(tmp_path, {**COMMAND, "outputs": {**COMMAND["outputs"], "version": {
+            "file": "job.log", "regex": "PySCF"}}})  # fmt: skip
+
+
+def test_warm_start_only_from_a_step_with_the_same_atoms(tmp_path):
+    """runner.chk of the previous step is copied and used (the runner says so in its log) when
+    the atom count is the same; with one more atom nothing is copied, ${restart} is 'no', the
+    result records a cold start and a note says why."""
+    used = {"file": "job.log", "regex": "restart: initial guess from runner.chk"}
+    engine = get_engine(
+        _campaign(tmp_path, {**COMMAND, "restart": {**COMMAND["restart"], "used": used}})
+    )
+    launcher = LauncherConfig()
+    water = molecule("H2O")
+    first = tmp_path / "s0"
+    engine.prepare(water, first, ComputeContext(step=0))
+    engine.launch(first, launcher)
+    assert (first / "runner.chk").is_file()
+
+    same = water.copy()
+    same.positions[1] += [0.0, 0.02, 0.0]
+    second = tmp_path / "s1"
+    engine.prepare(same, second, ComputeContext(step=1, previous=first))
+    assert (second / "runner.chk").is_file() and "restart yes" in (second / "job.inp").read_text()
+    engine.launch(second, launcher)
+    result, _ = engine.collect(second)
+    assert result.warm_started and result.notes == []
+
+    more = water + Atoms("H", positions=[[0.0, 0.0, 2.5]])
+    third = tmp_path / "s2"
+    engine.prepare(more, third, ComputeContext(step=2, charge=1, previous=second))
+    assert not (third / "runner.chk").exists()
+    assert "restart no" in (third / "job.inp").read_text()
+    engine.launch(third, launcher)
+    result, _ = engine.collect(third)
+    assert not result.warm_started
+    assert any("cold start" in n and "had 3 atoms, this one 4" in n for n in result.notes)
+    assert "initial guess from runner.chk" not in (third / "job.log").read_text()
+
+    # files in place but the program did not say it read them: not counted as a warm start
+    fourth = tmp_path / "s3"
+    engine.prepare(more, fourth, ComputeContext(step=3, charge=1, previous=third))
+    (fourth / "runner.chk").write_bytes(b"not a checkpoint")
+    shutil.copy(third / "job.log", fourth / "job.log")
+    shutil.copy(third / "potential.cube", fourth / "potential.cube")
+    state = json.loads((fourth / "command.json").read_text())
+    state["restart"] = "previous step"
+    (fourth / "command.json").write_text(json.dumps(state))
+    result, _ = engine.collect(fourth)
+    assert not result.warm_started
+    assert any("use of the restart files not proven" in n for n in result.notes)
+
+
+def test_frozen_campaign_loads_without_its_definition(tmp_path, monkeypatch):
+    """A definition kept in engines/ beside the config; the campaign is frozen under another
+    root; loaded from the campaign folder (where engines/ is not), it is the same campaign."""
+    from ionwell.campaign import CampaignPaths, check_frozen, freeze_or_check, load_frozen
+    from ionwell.config import load_campaign
+
+    cfg_dir = tmp_path / "configs"
+    _user_definition(cfg_dir)
+    data = {
+        "name": "frozen-def",
+        "host": {"builder": {"layers": 1, "shells": 1}},
+        "engine": {"definition": "my-runner", "timeout": 600},
+        "relax": {"enabled": False},
+    }
+    cfg = cfg_dir / "c.yaml"
+    cfg.write_text(yaml.safe_dump(data))
+    campaign = load_campaign(cfg)
+    assert campaign.engine.definition == "my-runner" and campaign.engine.definition_merged
+    paths = CampaignPaths(tmp_path / "elsewhere" / "campaigns" / "frozen-def")
+    paths.root.mkdir(parents=True)
+    assert freeze_or_check(paths, campaign)
+    frozen_text = paths.config.read_text()
+    assert "definition_merged: true" in frozen_text and "template_text" in frozen_text
+
+    shutil.rmtree(cfg_dir / "engines")  # the definition is gone
+    monkeypatch.delenv("IONWELL_ENGINES", raising=False)
+    monkeypatch.chdir(paths.root)
+    again = load_frozen(paths)
+    assert again == campaign and again.engine.label == "my-runner"
+    # the original config, its definition back, still matches the frozen one
+    _user_definition(cfg_dir)
+    assert check_frozen(paths, load_campaign(cfg))
+    # a changed definition cannot change the frozen campaign, but a new run of the config says so
+    (cfg_dir / "engines" / "my-runner.yaml").write_text(
+        yaml.safe_dump({**COMMAND, "label": "my-runner", "version": "2"})
+    )
+    assert load_frozen(paths) == campaign
+    with pytest.raises(ConfigError, match="another configuration"):
+        check_frozen(paths, load_campaign(cfg))
+    # a frozen file from before the marker (complete mapping, no marker) whose definition is
+    # gone is taken as it is
+    old = yaml.safe_load(frozen_text)
+    del old["engine"]["definition_merged"]
+    paths.config.write_text(yaml.safe_dump(old))
+    shutil.rmtree(cfg_dir / "engines")
+    assert load_frozen(paths) == campaign
+
+
+def test_quantum_espresso_input_has_a_cell_on_every_step_and_periodic_kpoints(tmp_path):
+    """The shipped QE definition (no pw.x needed): a flake without a cell gets a box, Γ only and
+    Martyna–Tuckerman; the same structure handed on (no cell again) gets the box again; a
+    periodic host keeps its cell and takes the k-points given beside 'definition:'."""
+    from ase.io import read
+
+    from ionwell.config import FlakeBuilder
+    from ionwell.engine_definitions import resolve_engines
+    from ionwell.host import build_flake
+
+    def engine(over: dict | None = None):
+        data = {
+            "name": "qe",
+            "host": {"builder": {"shells": 1, "layers": 1}},
+            "engine": {"definition": "quantum-espresso", **(over or {})},
+        }
+        return get_engine(parse_campaign(resolve_engines(data, tmp_path), "qe"))
+
+    flake = build_flake(FlakeBuilder(layers=1, shells=1))
+    assert flake.cell.rank == 0
+    qe = engine()
+    for step, atoms in ((0, flake), (1, flake + Atoms("Li", positions=[[0, 0, 1.8]]))):
+        work = tmp_path / f"flake{step}"
+        qe.prepare(atoms, work, ComputeContext(step=step))
+        text = (work / "pw.in").read_text()
+        assert "assume_isolated  = 'mt'" in text and "K_POINTS gamma" in text
+        assert "input_dft        = 'pbe'" in text
+        written = read(work / "pw.in", format="espresso-in")
+        lengths = np.ptp(atoms.positions, axis=0) + 12.0
+        np.testing.assert_allclose(written.cell.lengths(), lengths, atol=1e-6)
+
+    sheet = Atoms("C2", positions=[[0, 0, 5], [1.23, 0.71, 5]], pbc=True)
+    sheet.cell = [[2.46, 0, 0], [-1.23, 2.1304, 0], [0, 0, 10]]
+    qe = engine({"input": {"parameters": {"kpts": [6, 6, 1]}}})
+    qe.prepare(sheet, tmp_path / "sheet", ComputeContext(step=0))
+    text = (tmp_path / "sheet" / "pw.in").read_text()
+    assert "assume_isolated  = 'none'" in text and "K_POINTS automatic\n6 6 1" in text
+    written = read(tmp_path / "sheet" / "pw.in", format="espresso-in")
+    np.testing.assert_allclose(np.asarray(written.cell), np.asarray(sheet.cell), atol=1e-6)
+    np.testing.assert_allclose(written.positions, sheet.positions, atol=1e-6)

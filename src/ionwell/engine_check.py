@@ -1,8 +1,11 @@
 """``ionwell engines``: what engines exist here, and whether one works (a tiny single point).
 
-:func:`engine_kinds` lists the engine kinds; :func:`check_engine` runs H₂ (0.74 Å, in an 8 Å
-box) through an engine kind or a definition in a scratch folder and reports what could be read
-back: energy, SCF convergence, the potential map's grid and range, charges, levels.
+:func:`engine_kinds` lists the engine kinds; :func:`check_engine` runs H₂ (0.74 Å, centred in an
+8 Å cube, not periodic) through an engine kind or a definition in a scratch folder and reports
+what could be read back: energy, SCF convergence, the potential map's grid and range, charges,
+levels, and the program's name and version as recorded. A command engine applies its own cell
+rule to the probe (a non-periodic structure gets a box of its extent plus ``cell.box.vacuum`` on
+each side), exactly as in a campaign.
 """
 
 from __future__ import annotations
@@ -22,7 +25,7 @@ from ionwell.engines.base import ComputeContext
 from ionwell.engines.run import run_engine
 from ionwell.errors import IonwellError
 
-__all__ = ["CheckReport", "check_engine", "engine_kinds"]
+__all__ = ["CheckReport", "check_campaign", "check_engine", "engine_kinds", "probe"]
 
 KINDS = {
     "pyscf": "embedded Kohn-Sham DFT (PySCF), in-process; molecules and clusters",
@@ -53,12 +56,15 @@ class CheckReport(BaseModel):
     charge_scheme: str | None = None
     homo: float | None = None  # eV
     fermi_level: float | None = None  # eV
+    code: str | None = None  # the program, as recorded in a step's result
+    code_version: str | None = None  # as the program printed it, where the engine reads it
     notes: list[str] = []
     seconds: float = 0.0
     folder: str | None = None
 
 
-def _campaign_for(name: str, config_dir: Path) -> Campaign:
+def check_campaign(name: str, config_dir: Path) -> Campaign:
+    """The one-step campaign :func:`check_engine` runs the probe with (engine ``name``)."""
     if name in KINDS and name != "command":
         engine: dict = {"kind": name}
         if name in ("pyscf", "tblite"):
@@ -79,7 +85,8 @@ def _campaign_for(name: str, config_dir: Path) -> Campaign:
     return parse_campaign(resolve_engines(data, config_dir), f"engine {name!r}")
 
 
-def _probe() -> Atoms:
+def probe() -> Atoms:
+    """H₂, 0.74 Å, centred in an 8 Å cube, not periodic (positions Å)."""
     a = Atoms("H2", positions=[[0.0, 0.0, 0.0], [0.0, 0.0, 0.74]], cell=[8.0, 8.0, 8.0])
     a.center()
     return a
@@ -90,7 +97,7 @@ def check_engine(
 ) -> CheckReport:
     """Run the probe through engine kind or definition ``name``; never raises for engine faults."""
     config_dir = Path(config_dir or Path.cwd())
-    campaign = _campaign_for(name, config_dir)
+    campaign = check_campaign(name, config_dir)
     kind = campaign.engine.kind
     report = CheckReport(name=name, kind=kind, ok=False)
     if kind == "command":
@@ -103,7 +110,7 @@ def check_engine(
     folder.mkdir(parents=True, exist_ok=True)
     t0 = time.monotonic()
     try:
-        done = run_engine(campaign, _probe(), folder, ComputeContext(step=0, charge=0))
+        done = run_engine(campaign, probe(), folder, ComputeContext(step=0, charge=0))
         result, grid = done.result, done.potential
     except IonwellError as err:
         report.message = str(err)
@@ -121,8 +128,11 @@ def check_engine(
     report.charge_scheme = result.charge_scheme
     report.homo = result.homo
     report.fermi_level = result.fermi_level
+    report.code = result.code
+    report.code_version = result.code_version
     report.notes = list(result.notes)
-    report.message = "works" if report.ok else "ran, but the SCF did not converge"
+    ran = f"{result.code} {result.code_version}"
+    report.message = f"works ({ran})" if report.ok else f"ran ({ran}), but the SCF did not converge"
     if keep is None:
         shutil.rmtree(folder, ignore_errors=True)
     else:

@@ -5,16 +5,28 @@
 ``command`` (any external program, described entirely in the config). A ``command`` engine may
 name a *definition* — a YAML file of engine settings found in ``engines/`` beside the campaign
 config, in the folders of ``$IONWELL_ENGINES``, or among the definitions shipped with ionwell —
-and override any of its keys; see :func:`ionwell.engine_definitions.resolve`.
+and override any of its keys; see :func:`ionwell.engine_definitions.resolve_engines`. Once
+merged, the engine records ``definition_merged: true`` and is complete: a frozen campaign
+(``campaigns/<name>/campaign.yaml``) loads without the definition file.
+
+The cell rule of the command engine (``cell``): a structure that is not periodic, or whose cell
+is not full (fewer than three non-zero, independent vectors), is put in a box of its extent plus
+``cell.box.vacuum`` Å on each side, atoms centred, pbc flags as the structure has them; this
+happens on every step, so a host whose cell was never given (a flake) and every structure
+handed on from it always reach the program with a cell. A periodic structure keeps its cell.
+The program works in the box's frame; ionwell moves the map and the relaxed positions back to
+the structure's own frame when it reads them.
 
 Text templates (input files, argv items, writer parameters given as strings) use ``${name}``
 placeholders (Python's :class:`string.Template`; ``$$`` is a literal dollar sign). Placeholders:
-``structure`` (one ``Symbol x y z`` line per atom, Å), ``cell`` (three lines of lattice vectors,
-Å), ``box`` (``Lx Ly Lz``, Å: the cell's lengths, or for a non-periodic structure its extent plus
-8 Å of vacuum on each side), ``natoms``, ``charge``, ``spin`` (2S), ``multiplicity`` (2S+1),
-``unrestricted`` (``true`` when 2S > 0, else ``false``), ``step``, ``tasks``,
-``threads``, ``input`` (the input file name), ``restart`` (``restart.value`` when restart files
-were found, else ``restart.fresh``).
+``structure`` (one ``Symbol x y z`` line per atom, Å, in the program's frame: inside the box
+when the cell rule made one), ``cell`` (three lines of lattice vectors, Å, the box's or the
+structure's own), ``box`` (``Lx Ly Lz``, Å: the cell's lengths, the same box as ``cell``),
+``boxed`` (``true`` when the cell rule made a box, else ``false``), ``natoms``, ``charge``,
+``spin`` (2S), ``multiplicity`` (2S+1), ``unrestricted`` (``true`` when 2S > 0, else
+``false``), ``step``, ``tasks``, ``threads``, ``input`` (the input file name), ``restart``
+(``restart.value`` when restart files were found, else ``restart.fresh``), and each name of
+``cell.placeholders`` (its ``box`` value for a boxed structure, else its ``periodic`` value).
 
 Units: lengths Å, energies in the unit named beside each pattern (converted to eV at the reader
 with ``ase.units``), potentials in the unit named for the map (converted to volts).
@@ -39,6 +51,10 @@ __all__ = [
     "PotentialSpec",
     "PyscfEngineConfig",
     "RestartSpec",
+    "BoxSpec",
+    "CellSpec",
+    "CellChoice",
+    "VersionSpec",
     "TbliteEngineConfig",
     "ValueSpec",
     "ChargesSpec",
@@ -207,6 +223,17 @@ class PotentialSpec(_Model):
     )
 
 
+class VersionSpec(_Model):
+    """The program's version as it prints it: the last match of ``regex`` (one group) in
+    ``file``. Recorded as the step's ``code_version``; when the file or the line is missing the
+    static ``version`` is recorded instead, with a note."""
+
+    file: str = Field(description="file (glob) in the engine folder, e.g. the program's log")
+    regex: str = Field(description="pattern with one group; the last match counts (a string)")
+
+    _re = field_validator("regex")(classmethod(lambda cls, v: _check_regex(v, groups=1)))
+
+
 class OutputSpec(_Model):
     """What the program writes and where ionwell reads it."""
 
@@ -220,6 +247,9 @@ class OutputSpec(_Model):
     homo: ValueSpec | None = None
     lumo: ValueSpec | None = None
     structure: StructureSpec | None = Field(None, description="relaxed structure; optional")
+    version: VersionSpec | None = Field(
+        None, description="the version line the program prints (default: the static 'version')"
+    )
 
 
 class ConvergencePattern(_Model):
@@ -233,6 +263,11 @@ class ConvergencePattern(_Model):
 
 class ConvergenceSpec(_Model):
     scf: ConvergencePattern
+    scf_failed: ConvergencePattern | None = Field(
+        None,
+        description="pattern proving the program stopped because its SCF did not converge (it "
+        "may then exit non-zero): the SCF remedies retry it instead of the step failing",
+    )
     relax: ConvergencePattern | None = Field(
         None, description="pattern proving the program's own relaxation converged"
     )
@@ -240,7 +275,13 @@ class ConvergenceSpec(_Model):
 
 class RestartSpec(_Model):
     """Restart files: carried over from a killed attempt of the same step, or from the previous
-    step (warm start). When any is present, ``${restart}`` becomes ``value``."""
+    step (warm start). When any is present, ``${restart}`` becomes ``value``.
+
+    Files of the previous step are copied only when its structure had as many atoms as this
+    one (restart files of another atom count are ignored by the codes, which start cold); else
+    the start is cold, ``${restart}`` is ``fresh`` and the step's notes say why. A step records
+    ``warm_started`` only when restart files were in place and, if ``used`` is given, the
+    program's output proves it read them."""
 
     keep: list[str] = Field(
         default_factory=list, description="globs kept from an earlier, killed attempt of the step"
@@ -250,6 +291,94 @@ class RestartSpec(_Model):
     )
     value: str = Field("restart", description="what ${restart} becomes when restarting")
     fresh: str = Field("", description="what ${restart} becomes otherwise")
+    used: ConvergencePattern | None = Field(
+        None,
+        description="pattern in an output proving the program read the restart files "
+        "(default: files in place count as used)",
+    )
+
+
+class BoxSpec(_Model):
+    """The box given to a structure without a full periodic cell (see the module docstring)."""
+
+    vacuum: float = Field(
+        6.0, gt=0.0, le=100.0, description="vacuum on each side of the structure's extent, Å"
+    )
+
+
+class CellChoice(_Model):
+    """A placeholder value for each outcome of the cell rule."""
+
+    box: Any = Field(description="value for a structure put in a box (isolated)")
+    periodic: Any = Field(description="value for a periodic structure keeping its own cell")
+
+
+#: Placeholders the command engine fills itself; ``cell.placeholders`` may not reuse them.
+BUILTIN_PLACEHOLDERS = frozenset(
+    {
+        "structure", "cell", "box", "boxed", "natoms", "charge", "spin", "multiplicity",
+        "unrestricted", "step", "tasks", "threads", "input", "restart",
+    }
+)  # fmt: skip
+
+
+class CellSpec(_Model):
+    """How the command engine gives every structure a cell (see the module docstring).
+
+    ``placeholders`` lets a definition say how its program treats the two cases, e.g. QE's
+    ``assume_isolated`` (``{box: mt, periodic: none}``) or CP2K's ``PERIODIC``
+    (``{box: NONE, periodic: XYZ}``); a writer parameter that is exactly ``"${name}"`` keeps the
+    value's type (numbers, lists, null).
+    """
+
+    box: BoxSpec = BoxSpec()
+    placeholders: dict[str, CellChoice] = Field(
+        default_factory=dict,
+        description="placeholder name -> {box: value, periodic: value}",
+    )
+
+    @field_validator("placeholders")
+    @classmethod
+    def _names(cls, v: dict[str, CellChoice]) -> dict[str, CellChoice]:
+        import re
+
+        for name in v:
+            if not re.fullmatch(r"[A-Za-z_]\w*", name):
+                raise ValueError(f"{name!r} is not a placeholder name (letters, digits, _)")
+            if name in BUILTIN_PLACEHOLDERS:
+                raise ValueError(f"{name!r} is a built-in placeholder; choose another name")
+        return v
+
+
+Setting = str | int | float | bool | None
+
+
+def _setting_names(v: dict[str, Any], where: str) -> dict[str, Any]:
+    import re
+
+    for name in v:
+        if not re.fullmatch(r"[A-Za-z_]\w*", name):
+            raise ValueError(f"{where}: {name!r} is not a placeholder name (letters, digits, _)")
+        if name in BUILTIN_PLACEHOLDERS:
+            raise ValueError(f"{where}: {name!r} is a built-in placeholder; choose another name")
+    return v
+
+
+class ScfRemedySpec(_Model):
+    """One SCF retry of an external program, in its own terms: new values of the definition's
+    ``settings`` placeholders (e.g. more iterations, a smaller mixing factor, wider smearing)."""
+
+    name: str = Field(min_length=1, description="what the retry changes, as recorded")
+    settings: dict[str, Setting] = Field(
+        min_length=1, description="placeholder name -> value for this retry"
+    )
+
+
+class AseScfRemedySpec(_Model):
+    """One SCF retry of an ASE calculator: calculator keyword arguments to change."""
+
+    name: str = Field(min_length=1, description="what the retry changes, as recorded")
+    parameters: dict[str, Any] = Field(min_length=1, description="keyword arguments to change")
 
 
 class CommandEngineConfig(_Model):
@@ -259,8 +388,17 @@ class CommandEngineConfig(_Model):
     definition: str | None = Field(
         None, description="name of the engine definition this config was built from"
     )
+    definition_merged: bool = Field(
+        False,
+        description="set by ionwell once the definition's settings are merged in: the mapping "
+        "is complete and 'definition' is a record only, not looked up again (a frozen config)",
+    )
     label: str = Field("command", description="the program's name, as recorded in the ledger")
-    version: str = Field("unknown", description="the program's version, as recorded")
+    version: str = Field(
+        "unknown",
+        description="the program's version, recorded when outputs.version is not given or finds "
+        "nothing",
+    )
     charge: int = Field(0, description="charge of the pristine host, e")
     input: InputSpec
     argv: list[str] = Field(
@@ -278,10 +416,35 @@ class CommandEngineConfig(_Model):
     outputs: OutputSpec
     converged: ConvergenceSpec
     restart: RestartSpec = RestartSpec()
+    cell: CellSpec = CellSpec()
     relaxes: bool = Field(
         False, description="the program relaxes the structure itself (outputs.structure)"
     )
     timeout: float | None = Field(None, gt=0.0, description="seconds before the run is killed")
+    settings: dict[str, Setting] = Field(
+        default_factory=dict,
+        description="the definition's own placeholders (e.g. max_scf: 100, mixing: 0.4); "
+        "'${name}' alone in a writer parameter keeps the value's type",
+    )
+    scf_remedies: list[ScfRemedySpec] = Field(
+        default_factory=list,
+        description="SCF retries at the same structure when the SCF did not converge, in order "
+        "(each sets some of 'settings'); a site is never rejected for an SCF",
+    )
+
+    _names = field_validator("settings")(classmethod(lambda cls, v: _setting_names(v, "settings")))
+
+    @model_validator(mode="after")
+    def _remedies_known(self) -> CommandEngineConfig:
+        for r in self.scf_remedies:
+            unknown = sorted(set(r.settings) - set(self.settings))
+            if unknown:
+                raise ValueError(
+                    f"scf_remedies '{r.name}': {', '.join(unknown)} not among 'settings' "
+                    f"({', '.join(sorted(self.settings)) or 'none'}); a retry changes settings "
+                    "the input uses"
+                )
+        return self
 
 
 def _check_regex(pattern: str, groups: int | None) -> str:
@@ -314,6 +477,11 @@ class AseEngineConfig(_Model):
     charge: int = Field(0, description="charge of the pristine host, e")
     charge_keyword: str | None = Field(
         None, description="calculator keyword that receives the system charge (None: not passed)"
+    )
+    scf_remedies: list[AseScfRemedySpec] = Field(
+        default_factory=list,
+        description="SCF retries at the same structure when the SCF did not converge, in order "
+        "(each changes some calculator keyword arguments)",
     )
     potential: PotentialSpec | None = Field(
         None, description="potential map file written by the calculator, if it offers no method"

@@ -7,10 +7,20 @@ given beside ``definition`` override the file's (nested mappings merge key by ke
 values replace). A template named by ``input.template`` is read relative to the file that names
 it, and its text is kept in the config (``input.template_text``), so a frozen campaign needs no
 file outside its folder.
+
+Frozen campaigns: once merged, a command engine says ``definition_merged: true`` beside
+``definition: NAME``; the mapping is then complete, ``definition`` is a record of where it came
+from, and :func:`resolve_engines` does not look the file up again. So ``campaigns/<name>/
+campaign.yaml`` (the frozen, merged config) loads from the campaign folder on any machine,
+whether or not the definition file is there, and a later change of the definition file cannot
+change a campaign already frozen. (A frozen config written before this marker existed, with
+``definition`` and a complete mapping but no marker, is taken as is, with a warning, when its
+definition is no longer found.)
 """
 
 from __future__ import annotations
 
+import logging
 import os
 from pathlib import Path
 from typing import Any
@@ -20,6 +30,11 @@ import yaml
 from ionwell.errors import ConfigError
 
 __all__ = ["definition_dirs", "find_definition", "list_definitions", "resolve_engines"]
+
+log = logging.getLogger("ionwell.engine_definitions")
+
+#: Keys a command engine cannot do without: a mapping holding them all is complete.
+_REQUIRED = ("input", "argv", "outputs", "converged")
 
 
 def _packaged_dir() -> Path | None:
@@ -100,8 +115,21 @@ def _resolve_one(engine: Any, config_dir: Path, field: str) -> Any:
     if not isinstance(engine, dict):
         return engine
     name = engine.get("definition")
+    if name is not None and engine.get("definition_merged") is True:
+        return _read_template(engine, config_dir, field)  # complete: 'definition' is a record
     if name is not None:
-        path = find_definition(str(name), config_dir)
+        try:
+            path = find_definition(str(name), config_dir)
+        except ConfigError:
+            if engine.get("kind") == "command" and all(k in engine for k in _REQUIRED):
+                log.warning(
+                    "%s: definition %r not found; the mapping is complete (a frozen config), "
+                    "taken as it is",
+                    field,
+                    name,
+                )
+                return _read_template({**engine, "definition_merged": True}, config_dir, field)
+            raise
         try:
             data = yaml.safe_load(path.read_text())
         except (OSError, yaml.YAMLError) as err:
@@ -109,9 +137,13 @@ def _resolve_one(engine: Any, config_dir: Path, field: str) -> Any:
         if not isinstance(data, dict):
             raise ConfigError(f"{path}: expected a mapping of engine settings")
         data = _read_template(data, path.parent, f"{path}:")
+        data.pop("definition_merged", None)
         engine = _merge(data, engine)
         if engine.get("kind", "pyscf") != "command":
             engine.pop("definition")  # only the command engine records its definition's name
+            engine.pop("definition_merged", None)
+        else:
+            engine["definition_merged"] = True
     return _read_template(engine, config_dir, field)
 
 

@@ -38,6 +38,11 @@ class EngineRunError(IonwellError):
     """The external program could not be started, was killed, or exited with an error."""
 
 
+class ScfNotConverged(EngineRunError):
+    """The program stopped because its SCF did not converge (its output says so): the SCF
+    remedies retry it at the same structure; it is not a failure of the machine."""
+
+
 def die_with_parent() -> None:  # pragma: no cover - runs in the child before exec
     """Ask Linux to SIGKILL this (child) process when its parent dies."""
     try:

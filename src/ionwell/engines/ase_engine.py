@@ -1,17 +1,31 @@
 """Any ASE calculator, named by import path, run in-process.
 
-``engine.calculator`` is the import path of the calculator class (``package.module.Class``),
-built with ``engine.parameters`` as keyword arguments; when ``engine.charge_keyword`` is set,
-the step's total charge (e) is passed under that keyword. ASE calculators have no common spin
-keyword: the spin recorded is ``context.spin`` or the lowest the electron count allows, and a
-calculator that needs it takes it from ``engine.parameters``. A calculator with a ``directory``
-attribute (every :class:`ase.calculators.calculator.Calculator`) runs in the step's engine
-folder unless ``engine.parameters`` names another ``directory``.
+``engine.calculator`` is the import path (``package.module.name``) of a calculator class or of
+any callable that returns a calculator (a factory function, such as ``gpaw.GPAW`` in GPAW 22.8,
+whose class is ``gpaw.calculator.GPAW``); it is called with ``engine.parameters`` as keyword
+arguments, and what it returns must have ``get_potential_energy`` and ``get_forces`` (else a
+ConfigError naming ``engine.calculator``). When ``engine.charge_keyword`` is set, the step's
+total charge (e) is passed under that keyword. ASE calculators have no common spin keyword: the
+spin recorded is ``context.spin`` or the lowest the electron count allows, and a calculator that
+needs it takes it from ``engine.parameters``.
+
+The calculator's files go to the step's engine folder, without changing the process's working
+directory (other threads of the process may use relative paths):
+
+- ``directory``: a calculator with a ``directory`` attribute (every
+  :class:`ase.calculators.calculator.Calculator`) gets the engine folder unless
+  ``engine.parameters`` names another ``directory``;
+- ``txt``: a calculator that takes a ``txt`` keyword (its text log, e.g. GPAW's, which otherwise
+  goes to standard output) gets ``<engine folder>/calculator.txt`` unless ``engine.parameters``
+  names a ``txt``. "Takes" means the keyword is in the signature of the callable, or — for a
+  factory whose signature shows only ``**kwargs`` — in the signature of the class it returned
+  (the factory is then called once with ``txt``; if the returned class does not name ``txt`` in
+  its own signature, it is built again without it, so no calculator stores an unknown keyword).
 
 Files in the engine folder of a step (see :mod:`ionwell.engines.results`): ``input.extxyz``
 (cell and periodicity kept), ``context.json``, ``relax.traj`` and ``relax.log`` when a
-relaxation ran, ``potential.npz`` (volts), ``output.json`` (written last), plus whatever the
-calculator writes.
+relaxation ran, ``calculator.txt`` (the calculator's text log, see above), ``potential.npz``
+(volts), ``output.json`` (written last), plus whatever the calculator writes.
 
 Energy (eV) and forces (eV/Å) are the calculator's own (``get_potential_energy``,
 ``get_forces``); charges come from ``get_charges()`` where the calculator implements
@@ -47,9 +61,11 @@ After a relaxation the calculator's last evaluation is at the final geometry, so
 from __future__ import annotations
 
 import importlib
+import inspect
 import json
 import logging
 import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -70,23 +86,28 @@ from ionwell.engines.results import (
 from ionwell.errors import ConfigError, EngineOutputError, GridError
 from ionwell.grid import Grid, orient, save_npz
 
-__all__ = ["AseEngine", "grid_from_calculator", "load_calculator_class"]
+__all__ = ["AseEngine", "grid_from_calculator", "load_calculator", "load_calculator_class"]
 
 log = logging.getLogger("ionwell.engines.ase")
 
 TIMINGS = "timings.json"
 
+#: The calculator's text log in the engine folder, for calculators that take ``txt``.
+CALC_LOG = "calculator.txt"
 
-def load_calculator_class(path: str) -> type:
-    """Import the calculator class named by ``path`` (``package.module.Class``).
 
-    Raises ConfigError naming ``engine.calculator`` when the module or the class is missing or
-    the object is not a class.
+def load_calculator(path: str) -> Callable[..., Any]:
+    """Import what ``path`` (``package.module.name``) names: a calculator class or any callable
+    returning a calculator (a factory function).
+
+    Raises ConfigError naming ``engine.calculator`` when the module or the name is missing or
+    the object cannot be called.
     """
-    module_name, _, class_name = path.rpartition(".")
+    module_name, _, attr = path.rpartition(".")
     if not module_name:
         raise ConfigError(
-            f"engine.calculator: {path!r} is not an import path (expected package.module.Class)"
+            f"engine.calculator: {path!r} is not an import path (expected package.module.Class "
+            "or package.module.factory)"
         )
     try:
         module = importlib.import_module(module_name)
@@ -100,14 +121,43 @@ def load_calculator_class(path: str) -> type:
             f"engine.calculator: importing module {module_name!r} failed "
             f"({type(err).__name__}: {err})"
         ) from None
-    cls = getattr(module, class_name, None)
-    if cls is None:
+    obj = getattr(module, attr, None)
+    if obj is None:
         raise ConfigError(
-            f"engine.calculator: module {module_name!r} has no {class_name!r} (from {path!r})"
+            f"engine.calculator: module {module_name!r} has no {attr!r} (from {path!r})"
         )
-    if not isinstance(cls, type):
-        raise ConfigError(f"engine.calculator: {path!r} is not a class")
-    return cls
+    if not callable(obj):
+        raise ConfigError(
+            f"engine.calculator: {path!r} is a {type(obj).__name__}, not a calculator class or "
+            "a function returning a calculator"
+        )
+    return obj
+
+
+#: Former name of :func:`load_calculator` (it accepts factories too, not only classes).
+load_calculator_class = load_calculator
+
+
+def is_calculator(obj: Any) -> bool:
+    """True when ``obj`` can serve as an ASE calculator here (``get_potential_energy`` and
+    ``get_forces`` are callable)."""
+    return all(callable(getattr(obj, m, None)) for m in ("get_potential_energy", "get_forces"))
+
+
+def _keywords(obj: Any) -> tuple[set[str], bool] | None:
+    """The keyword names ``obj``'s signature spells out, and whether it also takes
+    ``**kwargs``; None when the signature cannot be read (a builtin, a C extension)."""
+    try:
+        sig = inspect.signature(obj)
+    except (TypeError, ValueError):
+        return None
+    named = {
+        name
+        for name, p in sig.parameters.items()
+        if p.kind in (p.POSITIONAL_OR_KEYWORD, p.KEYWORD_ONLY)
+    }
+    opaque = any(p.kind is p.VAR_KEYWORD for p in sig.parameters.values())
+    return named, opaque
 
 
 def _code_version(path: str) -> str:
@@ -172,15 +222,16 @@ class AseEngine(InProcessEngine):
         """Write ``input.extxyz`` and ``context.json``; remove outputs of an earlier attempt
         (including files matching ``engine.potential.file``)."""
         workdir = Path(workdir)
-        stale = [TIMINGS]
+        stale = [TIMINGS, CALC_LOG]
         if self.cfg.potential is not None and workdir.is_dir():
             stale += [p.name for p in workdir.glob(self.cfg.potential.file) if p.is_file()]
         write_inputs(atoms, workdir, context, stale=stale, keep_cell=True)
 
     def make_calculator(self, context: ComputeContext, workdir: Path):
-        """Build the calculator: ``engine.parameters`` (+ the charge), in ``workdir``."""
+        """Build the calculator: ``engine.parameters`` (+ the charge), its files in ``workdir``
+        (``directory`` and ``txt``, see the module docstring)."""
         cfg = self.cfg
-        cls = load_calculator_class(cfg.calculator)
+        factory = load_calculator(cfg.calculator)
         params = dict(cfg.parameters)
         if cfg.charge_keyword:
             if cfg.charge_keyword in params:
@@ -190,19 +241,55 @@ class AseEngine(InProcessEngine):
                     context.charge,
                 )
             params[cfg.charge_keyword] = int(context.charge)
-        try:
-            calc = cls(**params)
-        except Exception as err:  # a bad keyword or value, in whatever way the class reports it
+        txt = str(Path(workdir).resolve() / CALC_LOG)
+        keywords = _keywords(factory)
+        if "txt" in params or keywords is None:
+            calc = self._build(factory, params)
+        elif "txt" in keywords[0]:
+            calc = self._build(factory, params, txt=txt)
+        elif keywords[1] and not isinstance(factory, type):
+            # a factory showing only **kwargs: whether its product takes txt is known only from
+            # the product's class; built again without txt when that class does not name it
+            calc = self._build(factory, params, txt=txt, optional=True)
+            product = None if calc is None else _keywords(type(calc))
+            if product is None or "txt" not in product[0]:
+                calc = self._build(factory, params)
+        else:
+            calc = self._build(factory, params)
+        if not is_calculator(calc):
             raise ConfigError(
-                f"engine.parameters: {cfg.calculator} cannot be built with "
-                f"{sorted(params)} ({type(err).__name__}: {err})"
-            ) from None
+                f"engine.calculator: {cfg.calculator}(...) returned {type(calc).__name__}, not "
+                "an ASE calculator (it has no get_potential_energy/get_forces); name a "
+                "calculator class or a function returning a calculator"
+            )
         if "directory" not in params and hasattr(calc, "directory"):
             try:
                 calc.directory = str(Path(workdir).resolve())
             except (AttributeError, TypeError, ValueError):
                 log.debug("%s does not take a directory", cfg.calculator)
         return calc
+
+    def _build(
+        self, factory, params: dict[str, Any], txt: str | None = None, optional: bool = False
+    ):
+        """``factory(**params)``, plus ``txt`` when given; a failure is a ConfigError naming
+        ``engine.parameters``. With ``optional``, a TypeError naming ``txt`` returns None
+        instead (the caller builds again without it)."""
+        kwargs = params if txt is None else {**params, "txt": txt}
+        try:
+            return factory(**kwargs)
+        except TypeError as err:
+            if optional and "txt" in str(err):
+                return None
+            raise self._build_error(params, err) from None
+        except Exception as err:  # a bad keyword or value, in whatever way the code reports it
+            raise self._build_error(params, err) from None
+
+    def _build_error(self, params: dict[str, Any], err: Exception) -> ConfigError:
+        return ConfigError(
+            f"engine.parameters: {self.cfg.calculator} cannot be built with "
+            f"{sorted(params)} ({type(err).__name__}: {err})"
+        )
 
     def run(self, workdir: Path) -> None:
         """Compute the step described by ``workdir``'s inputs and write the outputs."""

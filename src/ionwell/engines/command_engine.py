@@ -6,12 +6,26 @@ extra input files, carries restart files over, and records what it did in ``comm
 :meth:`CommandEngine.collect` reads energy, forces, potential map, charges, orbital levels and
 the relaxed structure back, converting units at the edge (``ase.units``).
 
+Cell rule (``cell``): a structure that is not periodic or has no full cell is computed in a box
+of its extent plus ``cell.box.vacuum`` Å on each side, atoms centred (:func:`program_frame`), on
+every step; a periodic structure keeps its cell. The program's input, ``${structure}``,
+``${cell}`` and ``${box}`` are in the box's frame; the shift is recorded in ``command.json`` and
+:meth:`CommandEngine.collect` moves the potential map and a relaxed structure back by it, so the
+result is in the frame of the structure that came in (positions, map and the next step agree).
+
 Restart files: globs in ``restart.keep`` found in the engine folder come from an earlier attempt
 of the same step that was killed (walltime, node failure, SIGKILL); they are left in place and
 ``${restart}`` becomes ``restart.value``, so the program continues rather than starting over.
 Otherwise globs in ``restart.previous`` are copied from the previous step's engine folder (warm
-start), with the same effect. Outputs of the earlier attempt are removed first, so nothing stale
-is ever read.
+start), with the same effect — but only when the previous step's structure had the same number
+of atoms: codes ignore restart files of another system and start cold, so then nothing is
+copied, ``${restart}`` is ``restart.fresh`` and a note says why. ``warm_started`` in the result
+is true only when restart files were in place and (with ``restart.used``) the output proves the
+program read them. Outputs of the earlier attempt are removed first, so nothing stale is ever
+read.
+
+Version: with ``outputs.version`` the recorded ``code_version`` is what the program printed (the
+last match of the pattern); the static ``version`` is the fallback, with a note.
 
 Errors: a missing, empty, truncated or non-finite output raises :class:`EngineOutputError` with
 one message naming the step, the file and what was expected. A missing convergence line is not
@@ -36,6 +50,7 @@ from ase.io import read, write
 from ionwell.campaign import atomic_write_json
 from ionwell.engine_config import (
     ENERGY_UNITS,
+    CellSpec,
     CommandEngineConfig,
     LauncherConfig,
     StructureSpec,
@@ -45,16 +60,13 @@ from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.engines.results import CONTEXT, INPUT, read_inputs, write_inputs
 from ionwell.errors import ConfigError, EngineOutputError, IonwellError
 from ionwell.grid import Grid
-from ionwell.launcher import fill, run_program
+from ionwell.launcher import EngineRunError, ScfNotConverged, fill, run_program
 
-__all__ = ["CommandEngine", "structure_block"]
+__all__ = ["CommandEngine", "needs_box", "program_frame", "structure_block"]
 
 log = logging.getLogger("ionwell.engines.command")
 
 STATE = "command.json"
-
-#: Vacuum (Å) on each side of a non-periodic structure in the ``${box}`` placeholder.
-VACUUM = 8.0
 
 #: Fortran double-precision exponents (1.0D-03) are read as ordinary floats.
 _FORTRAN_EXP = re.compile(r"(?<=[0-9.])[dD](?=[-+]?[0-9])")
@@ -68,12 +80,57 @@ def structure_block(atoms: Atoms) -> str:
     )
 
 
+def needs_box(atoms: Atoms) -> bool:
+    """True when ``atoms`` is not periodic along any axis, or its cell is not full (fewer than
+    three non-zero, linearly independent vectors): the cell rule then gives it a box."""
+    if not atoms.pbc.any():
+        return True
+    cell = np.asarray(atoms.cell, dtype=float)
+    return atoms.cell.rank < 3 or abs(np.linalg.det(cell)) < 1e-6
+
+
+def program_frame(atoms: Atoms, spec: CellSpec) -> tuple[Atoms, np.ndarray, bool]:
+    """The structure as the program sees it, by the cell rule.
+
+    Returns ``(atoms in the program's frame, shift, boxed)``: for a structure that
+    :func:`needs_box`, an orthorhombic box whose edges are the extent along x, y, z plus
+    ``spec.box.vacuum`` Å on each side, with the atoms' bounding box centred in it
+    (positions + ``shift``, Å), pbc flags unchanged; otherwise a copy with its own cell and a
+    zero shift. Deterministic, so the inputs and the placeholders agree.
+    """
+    symbols, pos = atoms.get_chemical_symbols(), np.asarray(atoms.positions, dtype=float)
+    if not needs_box(atoms):
+        a = Atoms(symbols, positions=pos, cell=atoms.cell, pbc=atoms.pbc)
+        return a, np.zeros(3), False
+    if len(atoms) == 0:
+        lo = hi = np.zeros(3)
+    else:
+        lo, hi = pos.min(axis=0), pos.max(axis=0)
+    lengths = hi - lo + 2.0 * spec.box.vacuum
+    shift = lengths / 2.0 - (lo + hi) / 2.0
+    if not atoms.pbc.any() and len(atoms) and np.any(np.asarray(atoms.cell).any(axis=1)):
+        log.debug("non-periodic structure: its cell is replaced by the box (cell rule)")
+    a = Atoms(symbols, positions=pos + shift, cell=np.diag(lengths), pbc=atoms.pbc)
+    return a, shift, True
+
+
 def _cell_block(atoms: Atoms) -> str:
     return "\n".join(f"{a:16.10f} {b:16.10f} {c:16.10f}" for a, b, c in np.asarray(atoms.cell))
 
 
 def _number(text: str) -> float:
     return float(_FORTRAN_EXP.sub("e", text.strip()))
+
+
+def _atom_count(engine_dir: Path) -> int | None:
+    """Number of atoms of the structure computed in an engine folder (its ``input.extxyz``),
+    or None when it cannot be read."""
+    f = Path(engine_dir) / INPUT
+    try:
+        with open(f) as fh:
+            return int(fh.readline().split()[0])
+    except (OSError, ValueError, IndexError):
+        return None
 
 
 class CommandEngine:
@@ -111,19 +168,23 @@ class CommandEngine:
         return sorted(Path(p) for p in glob.glob(str(workdir / pattern), recursive=True))
 
     def values(self, atoms: Atoms, context: ComputeContext, restart: bool) -> dict[str, Any]:
-        """The placeholder values of one compute."""
-        n_el = int(sum(atoms.numbers)) - context.charge
+        """The placeholder values of one compute; ``atoms`` as they came in (the cell rule is
+        applied here, see :func:`program_frame`)."""
+        a, _, boxed = program_frame(atoms, self.cfg.cell)
+        n_el = int(sum(a.numbers)) - context.charge
         spin = context.spin if context.spin is not None else n_el % 2
-        if atoms.pbc.any():
-            box = atoms.cell.lengths()
-        else:
-            box = np.ptp(atoms.positions, axis=0) + 2 * VACUUM
+        chosen = {
+            name: (c.box if boxed else c.periodic) for name, c in self.cfg.cell.placeholders.items()
+        }
         return {
-            "structure": structure_block(atoms),
-            "cell": _cell_block(atoms),
-            "box": " ".join(f"{x:.6f}" for x in box),
+            **self.cfg.settings,
+            **chosen,
+            "structure": structure_block(a),
+            "cell": _cell_block(a),
+            "box": " ".join(f"{x:.6f}" for x in a.cell.lengths()),
+            "boxed": "true" if boxed else "false",
             "unrestricted": "true" if spin else "false",
-            "natoms": len(atoms),
+            "natoms": len(a),
             "charge": context.charge,
             "spin": spin,
             "multiplicity": spin + 1,
@@ -148,7 +209,9 @@ class CommandEngine:
     # -- contract ---------------------------------------------------------------------------
 
     def prepare(self, atoms: Atoms, workdir: Path, context: ComputeContext) -> None:
-        """Write the program's input, carry restart files over, remove stale outputs."""
+        """Write the program's input (in the frame of the cell rule), carry restart files over
+        (see the module docstring), remove stale outputs, record what was done in
+        ``command.json``."""
         workdir = Path(workdir)
         workdir.mkdir(parents=True, exist_ok=True)
         cfg = self.cfg
@@ -160,6 +223,7 @@ class CommandEngine:
                     p.unlink()
         (workdir / STATE).unlink(missing_ok=True)
 
+        notes: list[str] = []
         restart_from = None
         if keep:
             restart_from = "earlier attempt"
@@ -169,23 +233,25 @@ class CommandEngine:
                 ", ".join(sorted(p.name for p in keep)),
             )
         elif context.previous is not None and cfg.restart.previous:
-            copied = []
-            for g in cfg.restart.previous:
-                for p in self._matches(Path(context.previous), g):
-                    if p.is_file():
-                        target = workdir / p.relative_to(context.previous)
-                        target.parent.mkdir(parents=True, exist_ok=True)
-                        shutil.copy2(p, target)
-                        copied.append(p.name)
-            if copied:
-                restart_from = "previous step"
-                log.info("%swarm start from the previous step: %s", where, ", ".join(copied))
+            previous = Path(context.previous)
+            n_prev = _atom_count(previous)
+            if n_prev != len(atoms):
+                had = "an unreadable structure" if n_prev is None else f"{n_prev} atoms"
+                notes.append(
+                    f"cold start: the previous step ({previous}) had {had}, this one "
+                    f"{len(atoms)}; its restart files were not copied (a code ignores restart "
+                    "files of another system)"
+                )
+                log.info("%s%s", where, notes[-1])
+            else:
+                copied = self._copy_previous(previous, workdir)
+                if copied:
+                    restart_from = "previous step"
+                    log.info("%swarm start from the previous step: %s", where, ", ".join(copied))
 
         write_inputs(atoms, workdir, context, keep_cell=True)
-        a = Atoms(
-            atoms.get_chemical_symbols(), positions=atoms.positions, cell=atoms.cell, pbc=atoms.pbc
-        )
-        values = self.values(a, context, restart_from is not None)
+        a, shift, boxed = program_frame(atoms, cfg.cell)
+        values = self.values(atoms, context, restart_from is not None)
         target = workdir / cfg.input.file
         if cfg.input.format is not None:
             params = self._typed(dict(cfg.input.parameters), values, "engine.input.parameters")
@@ -206,8 +272,29 @@ class CommandEngine:
             target.write_text(fill(text, values, "engine.input.template"))
         for name, text in cfg.extra_inputs.items():
             (workdir / name).write_text(fill(text, values, f"engine.extra_inputs.{name}"))
-        state = {"restart": restart_from, "values": {k: values[k] for k in ("charge", "spin")}}
+        state = {
+            "restart": restart_from,
+            "values": {k: values[k] for k in ("charge", "spin")},
+            "frame": {
+                "boxed": boxed,
+                "shift": [float(x) for x in shift],
+                "cell": np.asarray(a.cell, dtype=float).tolist(),
+            },
+            "notes": notes,
+        }
         atomic_write_json(workdir / STATE, state)
+
+    def _copy_previous(self, previous: Path, workdir: Path) -> list[str]:
+        """Copy the ``restart.previous`` files of ``previous`` into ``workdir``; their names."""
+        copied = []
+        for g in self.cfg.restart.previous:
+            for p in self._matches(previous, g):
+                if p.is_file():
+                    target = workdir / p.relative_to(previous)
+                    target.parent.mkdir(parents=True, exist_ok=True)
+                    shutil.copy2(p, target)
+                    copied.append(p.name)
+        return copied
 
     def argv(self, workdir: Path, launcher: object | None = None) -> list[str] | None:
         """The program's argv as configured; its placeholders are filled by the launcher
@@ -240,15 +327,23 @@ class CommandEngine:
         seconds = 0.0
         for i, argv in enumerate(self.commands()):
             stdout = self.cfg.stdout if i == 0 else f"then-{i}.log"
-            seconds += run_program(
-                argv,
-                workdir,
-                launcher,
-                stdout=stdout,
-                timeout=self.cfg.timeout,
-                step=step,
-                values=values,
-            )
+            try:
+                seconds += run_program(
+                    argv,
+                    workdir,
+                    launcher,
+                    stdout=stdout,
+                    timeout=self.cfg.timeout,
+                    step=step,
+                    values=values,
+                )
+            except EngineRunError as err:
+                failed = self.cfg.converged.scf_failed
+                if i == 0 and failed is not None and self._says(workdir, failed):
+                    raise ScfNotConverged(
+                        f"step {step}: {argv[0]} stopped: its SCF did not converge ({err})"
+                    ) from None
+                raise
         state = json.loads((workdir / STATE).read_text())
         state["seconds"] = round(seconds, 3)
         atomic_write_json(workdir / STATE, state)
@@ -318,6 +413,39 @@ class CommandEngine:
             raise EngineOutputError(f"{where}{path}: non-finite positions ({what})")
         return atoms
 
+    def _version(self, workdir: Path) -> tuple[str, str | None]:
+        """The version the program printed (``outputs.version``), else the static ``version``
+        and a note saying why; never raises."""
+        spec = self.cfg.outputs.version
+        if spec is None:
+            return self.cfg.version, None
+        found = [p for p in self._matches(workdir, spec.file) if p.is_file()]
+        if not found:
+            return self.cfg.version, (
+                f"{spec.file}: missing, version {self.cfg.version!r} recorded from the config"
+            )
+        text = found[-1].read_text(errors="replace")
+        hits = re.findall(spec.regex, text, flags=re.MULTILINE)
+        if not hits:
+            return self.cfg.version, (
+                f"{found[-1].name}: no line matching {spec.regex!r}, version "
+                f"{self.cfg.version!r} recorded from the config"
+            )
+        last = str(hits[-1][0] if isinstance(hits[-1], tuple) else hits[-1]).strip()
+        if not last:
+            return self.cfg.version, (
+                f"{found[-1].name}: the version line is there but names no version, version "
+                f"{self.cfg.version!r} recorded from the config"
+            )
+        return last, None
+
+    def _says(self, workdir: Path, pattern) -> bool:
+        """Whether an output file matches ``pattern`` (False when the file is missing)."""
+        try:
+            return self._found(workdir, pattern, "")[0]
+        except EngineOutputError:
+            return False
+
     def _found(self, workdir: Path, pattern, what: str) -> tuple[bool, str | None]:
         path, text = self._text(workdir, pattern.file, what)
         if re.search(pattern.regex, text, flags=re.MULTILINE):
@@ -340,7 +468,9 @@ class CommandEngine:
                 f"{where}{workdir}: the inputs written by prepare() are unreadable ({err})"
             ) from None
         n = len(atoms)
-        notes: list[str] = []
+        frame = state.get("frame") or {}
+        shift = np.asarray(frame.get("shift", [0.0, 0.0, 0.0]), dtype=float)
+        notes: list[str] = list(state.get("notes", []))
         scf_ok, note = self._found(workdir, cfg.converged.scf, "SCF convergence")
         if note:
             notes.append(note)
@@ -349,7 +479,13 @@ class CommandEngine:
         relax_ok: bool | None = None
         final = atoms
         if cfg.relaxes and out.structure is not None:
-            final = self._structure(workdir, out.structure, n, "the relaxed structure")
+            relaxed = self._structure(workdir, out.structure, n, "the relaxed structure")
+            final = Atoms(
+                relaxed.get_chemical_symbols(),
+                positions=relaxed.positions - shift,  # back from the program's frame
+                cell=atoms.cell,
+                pbc=atoms.pbc,
+            )
             if cfg.converged.relax is not None:
                 relax_ok, note = self._found(workdir, cfg.converged.relax, "relaxation")
                 if note:
@@ -393,7 +529,27 @@ class CommandEngine:
         grid = None
         if ctx.potential:
             pot_path = self._one_file(workdir, out.potential.file, "the potential map")
-            grid = read_potential(pot_path, out.potential, final, ctx.step)
+            # the map is in the program's frame: read it with the structure in that frame (for
+            # 'sign: auto'), then move it back to the frame of the structure that came in
+            in_frame = final.copy()
+            in_frame.positions = final.positions + shift
+            grid = read_potential(pot_path, out.potential, in_frame, ctx.step)
+            if shift.any():
+                grid = Grid(
+                    origin=np.asarray(grid.origin, dtype=float) - shift,
+                    axes=grid.axes,
+                    values=grid.values,
+                    pbc=grid.pbc,
+                )
+
+        version, note = self._version(workdir)
+        if note:
+            notes.append(note)
+        warm = state.get("restart") is not None
+        if warm and cfg.restart.used is not None:
+            warm, note = self._found(workdir, cfg.restart.used, "use of the restart files")
+            if note:
+                notes.append(note)
 
         result = StepResult(
             energy=energy,
@@ -409,9 +565,9 @@ class CommandEngine:
             charges=charges,
             charge_scheme=out.charges.scheme if out.charges is not None else None,
             code=cfg.label,
-            code_version=cfg.version,
+            code_version=version,
             wall_time=float(state.get("seconds", 0.0)),
-            warm_started=state.get("restart") is not None,
+            warm_started=warm,
             notes=notes,
             **levels,
         )

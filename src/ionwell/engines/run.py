@@ -17,6 +17,7 @@ from ionwell.engines import get_engine
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.errors import EngineOutputError
 from ionwell.grid import Grid
+from ionwell.launcher import ScfNotConverged
 
 log = logging.getLogger(__name__)
 
@@ -56,7 +57,8 @@ def _tblite_remedy(eng, rem, name: str) -> tuple[str, dict] | None:
 def scf_variants(campaign) -> list[tuple[str, object]]:
     """The campaign's engine as configured, then each configured SCF remedy, in the engine's
     own terms (embedded DFT: cycles, level shift, smearing; tight binding: cycles, electronic
-    temperature). Engines without SCF settings ionwell knows get no variants."""
+    temperature; external programs and ASE calculators: the retries their config lists,
+    ``scf_remedies``). An empty ``remedies.scf`` switches all of them off."""
     eng = campaign.engine
     rem = campaign.remedies
     out = [("as configured", campaign)]
@@ -67,6 +69,18 @@ def scf_variants(campaign) -> list[tuple[str, object]]:
                 what, upd = got
                 variant = campaign.model_copy(update={"engine": eng.model_copy(update=upd)})
                 out.append((what, variant))
+        return out
+    if eng.kind == "command" and rem.scf:  # the definition's own retries, in its terms
+        for r in eng.scf_remedies:
+            upd = {"settings": {**eng.settings, **r.settings}}
+            variant = campaign.model_copy(update={"engine": eng.model_copy(update=upd)})
+            out.append((r.name, variant))
+        return out
+    if eng.kind == "ase" and rem.scf:
+        for r in eng.scf_remedies:
+            upd = {"parameters": {**eng.parameters, **r.parameters}}
+            variant = campaign.model_copy(update={"engine": eng.model_copy(update=upd)})
+            out.append((r.name, variant))
         return out
     if eng.kind != "pyscf":
         return out
@@ -111,6 +125,7 @@ def run_engine(
     configured remedy. With ``tolerate_parse_errors`` an unreadable output ends the compute
     with ``parse_error`` set instead of raising."""
     tried: list[str] = []
+    last_error: ScfNotConverged | None = None
     result: StepResult | None = None
     pot: Grid | None = None
     for what, variant in scf_variants(campaign):
@@ -118,7 +133,13 @@ def run_engine(
         if tried:
             log.warning("step %04d: SCF not converged; retrying with %s", context.step, what)
         engine.prepare(atoms, workdir, context)
-        execute(variant, workdir, context.step, relative)
+        try:
+            execute(variant, workdir, context.step, relative)
+        except ScfNotConverged as err:  # the program stopped on its unconverged SCF
+            tried.append(f"SCF retry with {what}: not converged" if tried else "first try")
+            last_error = err
+            continue
+        last_error = None
         try:
             result, pot = engine.collect(workdir)
         except EngineOutputError as err:
@@ -129,4 +150,9 @@ def run_engine(
         tried.append(f"SCF retry with {what}: {verdict}" if tried else "first try")
         if result.scf_converged:
             break
+    if last_error is not None:  # the last try stopped on its SCF: no result to record
+        raise ScfNotConverged(
+            f"{last_error}; the SCF did not converge with any remedy "
+            f"({'; '.join(tried[1:]) or 'none configured'})"
+        )
     return Computed(result=result, potential=pot, remedies=tried[1:])
