@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 import pytest
 from ase import Atoms
@@ -79,6 +81,40 @@ class StrictEMT(EMT):
 
     def __init__(self, asap_cutoff: bool = False) -> None:
         super().__init__(asap_cutoff=asap_cutoff)
+
+
+class FakeLoggingEMT(EMTReturningGrid):
+    """Test double: EMT (with a potential map) and a text log named by a ``txt`` keyword,
+    standard output by default, as GPAW's calculator class has. One line per calculation."""
+
+    def __init__(self, txt: str = "-", **kwargs) -> None:
+        super().__init__(**kwargs)
+        self.txt = txt
+
+    def calculate(self, atoms=None, properties=("energy",), system_changes=()):
+        super().calculate(atoms, properties, system_changes)
+        line = f"fake log: energy {self.results['energy']:.6f} eV\n"
+        if self.txt == "-":
+            print(line, end="")
+        else:
+            with open(self.txt, "a") as f:
+                f.write(line)
+
+
+def fake_factory_logging(*args, **kwargs):
+    """Test double: a factory *function* with an opaque signature returning FakeLoggingEMT,
+    the way ``gpaw.GPAW`` (a function in GPAW 22.8) returns ``gpaw.calculator.GPAW``."""
+    return FakeLoggingEMT(*args, **kwargs)
+
+
+def fake_factory_file_potential(**kwargs):
+    """Test double: a factory function returning EMTWritingPotential (no ``txt`` keyword)."""
+    return EMTWritingPotential(**kwargs)
+
+
+def fake_factory_not_a_calculator(**kwargs):
+    """Test double: a factory function that returns something that is not a calculator."""
+    return {"energy": 0.0}
 
 
 def bump_grid(atoms: Atoms) -> Grid:
@@ -245,3 +281,115 @@ def test_configured_file_missing_is_a_clear_error(tmp_path):
     eng.prepare(_cluster(), tmp_path, ComputeContext(step=0))
     with pytest.raises(EngineOutputError, match=r"pot\.cube: missing \(engine\.potential\.file"):
         eng.run(tmp_path)
+
+
+# ---------------------------------------------------------------------------------------------
+# factories (a function returning a calculator) and the calculator's text log
+
+
+def test_factory_function_is_accepted_and_builds_without_unknown_keywords(tmp_path):
+    cfg = FILE_CFG.model_copy(update={"calculator": f"{HERE}.fake_factory_file_potential"})
+    eng = AseEngine(cfg, NO_RELAX)
+    eng.prepare(_cluster(), tmp_path, ComputeContext(step=0))
+    calc = eng.make_calculator(ComputeContext(step=0), tmp_path)
+    # EMT names no txt keyword: built again without it, so nothing unknown is stored
+    assert isinstance(calc, EMTWritingPotential) and "txt" not in calc.parameters
+    assert calc.directory == str(tmp_path.resolve())
+    result, grid = _run(_cluster(), tmp_path, cfg)
+    ref = _cluster()
+    ref.calc = EMT()  # reference implementation: ASE's EMT itself
+    assert result.energy == pytest.approx(ref.get_potential_energy(), abs=1e-12)
+    np.testing.assert_allclose(grid.values, bump_grid(_cluster()).values, rtol=1e-6)
+
+
+@pytest.mark.parametrize("path", [f"{HERE}.fake_factory_logging", f"{HERE}.FakeLoggingEMT"])
+def test_calculator_text_log_lands_in_the_engine_folder(tmp_path, monkeypatch, capsys, path):
+    cwd = tmp_path / "elsewhere"
+    cwd.mkdir()
+    monkeypatch.chdir(cwd)
+    work = tmp_path / "engine"
+    result, _ = _run(_cluster(), work, AseEngineConfig(calculator=path))
+    log_file = work / "calculator.txt"
+    assert log_file.read_text() == f"fake log: energy {result.energy:.6f} eV\n"
+    assert "fake log" not in capsys.readouterr().out  # not on standard output
+    assert list(cwd.iterdir()) == []  # nothing in the process's working directory
+    assert Path.cwd() == cwd  # and the working directory was never changed
+    # a new attempt of the step starts a new log
+    AseEngine(AseEngineConfig(calculator=path), NO_RELAX).prepare(
+        _cluster(), work, ComputeContext(step=0)
+    )
+    assert not log_file.exists()
+
+
+def test_a_txt_given_in_the_parameters_wins(tmp_path):
+    mine = tmp_path / "mine.log"
+    cfg = AseEngineConfig(calculator=f"{HERE}.fake_factory_logging", parameters={"txt": str(mine)})
+    eng = AseEngine(cfg, NO_RELAX)
+    eng.prepare(_cluster(), tmp_path / "engine", ComputeContext(step=0))
+    calc = eng.make_calculator(ComputeContext(step=0), tmp_path / "engine")
+    assert calc.txt == str(mine)
+
+
+def test_a_factory_returning_no_calculator_is_a_clear_error(tmp_path):
+    cfg = AseEngineConfig(calculator=f"{HERE}.fake_factory_not_a_calculator")
+    eng = AseEngine(cfg, NO_RELAX)
+    eng.prepare(_cluster(), tmp_path, ComputeContext(step=0))
+    with pytest.raises(ConfigError) as info:
+        eng.run(tmp_path)
+    message = str(info.value)
+    assert message.startswith("engine.calculator:") and "fake_factory_not_a_calculator" in message
+    assert "returned dict, not an ASE calculator" in message and "\n" not in message
+
+
+def test_a_name_that_cannot_be_called_is_a_clear_error(tmp_path):
+    cfg = AseEngineConfig(calculator=f"{HERE}.MAP_FILE")
+    eng = AseEngine(cfg, NO_RELAX)
+    eng.prepare(_cluster(), tmp_path, ComputeContext(step=0))
+    with pytest.raises(ConfigError, match=r"engine\.calculator: .*MAP_FILE.* is a str, not a "):
+        eng.run(tmp_path)
+
+
+class FakeConvergenceError(RuntimeError):
+    """Test double: what a calculator raises when its SCF does not converge (GPAW raises a
+    KohnShamConvergenceError; GPAW cannot be imported into this environment)."""
+
+
+class FakeStubbornSCF(EMTReturningGrid):
+    """Test double: EMT that 'fails to converge' unless given enough iterations (maxiter)."""
+
+    def __init__(self, maxiter: int = 10) -> None:
+        super().__init__()
+        self.maxiter = maxiter
+
+    def calculate(self, *args, **kwargs):
+        if self.maxiter < 100:
+            raise FakeConvergenceError(f"did not converge in {self.maxiter} iterations")
+        super().calculate(*args, **kwargs)
+
+
+def test_a_calculator_that_raises_on_its_scf_is_retried_with_its_remedies(tmp_path):
+    # the ase engine's scf_remedies change calculator keywords; a convergence error is an
+    # unconverged SCF (retried at the same structure), not a broken calculator
+    from ionwell.config import parse_campaign
+    from ionwell.engines.run import run_engine
+    from ionwell.launcher import ScfNotConverged
+
+    data = {
+        "name": "remedy",
+        "host": {"builder": {"kind": "flake", "layers": 1, "shells": 1}},
+        "engine": {
+            "kind": "ase",
+            "calculator": f"{HERE}.FakeStubbornSCF",
+            "parameters": {"maxiter": 10},
+            "scf_remedies": [{"name": "maxiter 300", "parameters": {"maxiter": 300}}],
+        },
+        "relax": {"enabled": False},
+    }
+    ctx = ComputeContext(step=0, charge=0, potential=True)
+    out = run_engine(parse_campaign(data), molecule("H2"), tmp_path / "a", ctx)
+    assert out.result.scf_converged
+    assert out.remedies == ["SCF retry with maxiter 300: converged"]
+    # without a remedy that helps, the step fails naming the SCF, not the calculator
+    data["engine"]["scf_remedies"] = [{"name": "maxiter 50", "parameters": {"maxiter": 50}}]
+    with pytest.raises(ScfNotConverged, match="did not converge with any remedy"):
+        run_engine(parse_campaign(data), molecule("H2"), tmp_path / "b", ctx)

@@ -469,7 +469,8 @@ class AseEngineConfig(_Model):
     kind: Literal["ase"] = "ase"
     calculator: str = Field(
         pattern=r"^[A-Za-z_][\w.]*\.[A-Za-z_]\w*$",
-        description="import path of the calculator class, e.g. ase.calculators.emt.EMT",
+        description="import path of a calculator class, or of a function returning a calculator "
+        "(e.g. ase.calculators.emt.EMT, gpaw.GPAW)",
     )
     parameters: dict[str, Any] = Field(
         default_factory=dict, description="keyword arguments of the calculator"

@@ -85,6 +85,7 @@ from ionwell.engines.results import (
 )
 from ionwell.errors import ConfigError, EngineOutputError, GridError
 from ionwell.grid import Grid, orient, save_npz
+from ionwell.launcher import ScfNotConverged
 
 __all__ = ["AseEngine", "grid_from_calculator", "load_calculator", "load_calculator_class"]
 
@@ -316,6 +317,11 @@ class AseEngine(InProcessEngine):
         except (ConfigError, EngineOutputError):
             raise
         except Exception as err:
+            if "convergence" in type(err).__name__.lower():  # e.g. GPAW's KohnShamConvergenceError
+                raise ScfNotConverged(
+                    f"{workdir}: the calculator {cfg.calculator} stopped: its SCF did not "
+                    f"converge ({type(err).__name__}: {err})"
+                ) from err
             raise EngineOutputError(
                 f"{workdir}: the calculator {cfg.calculator} failed ({type(err).__name__}: {err})"
             ) from err
