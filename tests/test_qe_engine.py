@@ -60,6 +60,11 @@ def _direct_h2(folder: Path) -> tuple[float, str]:
     inp["control"]["restart_mode"] = "from_scratch"
     inp["system"]["tot_charge"] = 0
     inp["system"]["assume_isolated"] = data["cell"]["placeholders"]["isolated"]["box"]
+    # the definition's own SCF settings (placeholders its retries change), as configured
+    settings = data["settings"]
+    inp["system"]["degauss"] = settings["degauss"]
+    inp["electrons"]["mixing_beta"] = settings["mixing_beta"]
+    inp["electrons"]["electron_maxstep"] = settings["max_scf"]
     h2 = Atoms(
         "H2",
         positions=[[vac, vac, vac], [vac, vac, vac + 0.74]],
