@@ -11,6 +11,13 @@ from ionwell.resources import walltime_minutes as iw_walltime
 from ionwell.store.paths import step_label as iw_step_label
 from ionwell.workflow import chain as iw_chain
 from ionwell.workflow import setup as iw_setup
+from ionwell.engines import soft_stop as iw_soft_stop
+
+# In a scheduler job, the warning signal before the time limit (SIGUSR1, resources.compute.
+# stop_before) must not end this process: Python installs a handler only from the main thread,
+# where Snakemake parses this file (rule bodies run in worker threads). The handler records the
+# request; the compute body then stops the external program through its soft-stop files.
+iw_soft_stop.arm()
 
 
 wildcard_constraints:

@@ -269,7 +269,7 @@ def test_bad_parameters_name_engine_parameters(tmp_path):
 def test_no_potential_is_a_clear_error(tmp_path):
     eng = AseEngine(AseEngineConfig(calculator="ase.calculators.emt.EMT"), NO_RELAX)
     eng.prepare(_cluster(), tmp_path, ComputeContext(step=0))
-    with pytest.raises(EngineOutputError, match="offers no potential.*engine.potential"):
+    with pytest.raises(ConfigError, match="offers no potential.*engine.potential"):
         eng.run(tmp_path)
 
 

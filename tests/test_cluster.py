@@ -127,6 +127,87 @@ def test_walltime_kill_is_retried_with_more_time_and_restarts(slurm_cluster, tmp
     assert "TIMEOUT" in states
 
 
+@pytest.mark.slow
+def test_warning_signal_stops_pw_x_cleanly_and_the_retry_resumes(slurm_cluster, tmp_path):
+    """The graceful stop before the walltime, end to end on SLURM with Quantum ESPRESSO.
+
+    Benzene (the builder's 1 layer, 1 shell) made slow on purpose (mixing_beta 0.15, conv_thr
+    1e-9 Ry: ~30-35 SCF iterations, 60-150 s on 2 busy cores). The first attempt has SLURM's
+    smallest limit, one minute, and asks for SIGUSR1 10 s before it (--signal=USR1@10; this
+    SLURM sends it at its periodic check, up to 30 s early, measured 4-6 s off with the test
+    cluster): pw.x, ~15-40 s into its SCF, gets iw.EXIT (QE user guide, "Restarting": a
+    '$prefix.EXIT' file makes pw.x stop cleanly), stops, and the job fails before the limit;
+    the retry (walltime_factor 4: four minutes, warned after 3:20 at the earliest) runs pw.x
+    with restart_mode 'restart', which continues the SCF from the files written at the stop.
+    Measured (load 3-5, conv_thr 1e-10): the signal 17 s into the job, pw.x stopped 0.7-1.6 s
+    after it, resumed for 149-170 s; 260 s in all with the cluster's start."""
+    from test_qe_engine import _missing as qe_missing
+
+    if qe_missing():
+        pytest.skip(qe_missing())
+    name = "softstop"
+    cfg = _config(
+        tmp_path,
+        name,
+        engine={
+            "definition": "quantum-espresso",
+            "settings": {"mixing_beta": 0.15, "max_scf": 300},
+            "input": {"parameters": {"input_data": {"electrons": {"conv_thr": 1.0e-9}}}},
+        },
+        guest={"element": "Li", "charge_mode": "neutral"},
+        stop={"max_steps": 0},
+        remedies={"scf": []},
+        # this SLURM has no PMI (MpiDefault=none): Debian's Open MPI 4.1 takes a pw.x started
+        # inside the job's srun step for a direct launch and aborts in MPI_Init; without the
+        # step's id it starts as a singleton (measured here). An argv prefix, nothing more.
+        launcher={
+            "kind": "mpi",
+            "mpi_prefix": ["env", "-u", "SLURM_STEP_ID", "-u", "SLURM_STEPID"],
+        },
+        resources={
+            "compute": {
+                "threads": 1,
+                "memory": 1000,
+                "walltime": 1,
+                "walltime_factor": 4,
+                "stop_before": 10,
+            }
+        },
+    )
+    t0 = time.monotonic()
+    proc = _run(cfg, tmp_path, "--profile", "slurm", "--retries", "2", timeout=600)
+    total = time.monotonic() - t0
+    assert proc.returncode == 0, proc.stdout[-2000:] + proc.stderr[-3000:]
+    root = tmp_path / "campaigns" / name
+    recs = _records(tmp_path, name)
+    assert [r.step for r in recs] == [0] and recs[0].scf_converged
+
+    # the first attempt stopped on the signal: recorded as stopped, not as a result
+    events = [json.loads(line) for line in (root / "events.jsonl").read_text().splitlines()]
+    kinds = [e["event"] for e in events if e.get("step") == 0]
+    assert kinds.count("stopped") == 1 and kinds.count("recorded") == 1, kinds
+    assert kinds.index("stopped") < kinds.index("recorded")
+    assert "failed" not in kinds
+    stopped = next(e for e in events if e["event"] == "stopped")
+    assert "pw.x was asked to stop before the job's time limit" in stopped["message"]
+    log = (root / "ionwell.log").read_text() if (root / "ionwell.log").is_file() else ""
+    # SLURM: the first job ended itself before its limit (FAILED, no TIMEOUT), the retry done
+    ours = {e.get("job") for e in events}
+    jobs = [j for j in slurm_cluster.submissions("") if j["JobId"] in ours]
+    states = sorted(j["JobState"] for j in jobs)
+    assert states == ["COMPLETED", "FAILED"], (states, jobs)
+
+    # the retry continued from pw.x's restart files, in pw.x's own words
+    out = (root / "steps" / "0000" / "engine" / "pw.out").read_text()
+    assert "Calculation restarted from scf iteration" in out
+    assert "The initial density is read from file" in out
+    assert "convergence has been achieved" in out
+    result = json.loads((root / "steps" / "0000" / "result.json").read_text())
+    assert result["warm_started"] is True and result["scf_converged"] is True
+    print(f"soft stop campaign: {total:.0f} s; {stopped['message']}")
+    print("\n".join(line for line in log.splitlines() if "soft stop" in line or "SIGUSR1" in line))
+
+
 def _remote(sshd, tmp: Path, known_hosts: str | None = None) -> dict:
     return {
         "host": sshd.host,

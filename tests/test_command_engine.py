@@ -208,7 +208,7 @@ def test_collect_matches_pyscf_directly(water_run):
         ("nan-cube", r"step 2: .*potential\.cube"),
         (
             "few-charges",
-            r"step 2: .*job\.log: 2 lines match the charge pattern, expected at least 3",
+            r"step 2: .*job\.log: 2 lines match the mulliken charge pattern, expected at least 3",
         ),
     ],
 )
@@ -258,7 +258,7 @@ def test_bad_engine_configs_are_named(tmp_path):
         **COMMAND,
         "outputs": {**COMMAND["outputs"], "energy": {"file": "x", "regex": "no group"}},
     }
-    with pytest.raises(ConfigError, match=r"engine\.command\.outputs\.energy.*capturing group"):
+    with pytest.raises(ConfigError, match=r"engine\.outputs\.energy\.regex.*capturing group"):
         _campaign(tmp_path, bad)
     bad = {**COMMAND, "input": {"file": "job.inp", "template": "missing.tmpl"}}
     with pytest.raises(ConfigError, match=r"engine\.input\.template: cannot read .*missing\.tmpl"):
@@ -443,7 +443,11 @@ def test_shipped_definitions_write_their_inputs(tmp_path):
     for name, infile, expect in (
         ("quantum-espresso", "pw.in", ["tot_charge", "restart_mode", "from_scratch", "C.pbe"]),
         # C6H6⁺ has 41 electrons: a doublet, unrestricted
-        ("cp2k", "cp2k.inp", ["CHARGE 1", "SCF_GUESS ATOMIC", "MULTIPLICITY 2", "UKS true", "ABC"]),
+        (
+            "cp2k",
+            "cp2k.inp",
+            ["CHARGE 1", "SCF_GUESS ATOMIC", "MULTIPLICITY 2", "UKS true", "      A "],
+        ),
     ):
         data = {
             "name": "d",
@@ -520,7 +524,8 @@ def test_cell_rule_boxes_a_structure_without_a_periodic_cell(tmp_path):
 def test_box_placeholder_and_input_agree_on_every_step(tmp_path):
     engine = _template_engine(
         tmp_path,
-        "box ${box}\nboxed ${boxed}\nperiodic ${periodic}\ncell\n${cell}\n${structure}\n",
+        "box ${box}\nboxed ${boxed}\nperiodic ${periodic}\ncell\n${cell}\n${structure}\n"
+        "${cell_a}\n${cell_b}\n${cell_c}\n",
         cell={
             "box": {"vacuum": 6.0},
             "placeholders": {"periodic": {"box": "NONE", "periodic": "XY"}},
@@ -535,7 +540,8 @@ def test_box_placeholder_and_input_agree_on_every_step(tmp_path):
     assert lines[1] == "boxed true" and lines[2] == "periodic NONE"
     cell = np.array([x.split() for x in lines[4:7]], dtype=float)
     np.testing.assert_allclose(np.diag(cell), box, atol=1e-5)
-    pos = np.array([x.split()[1:] for x in lines[7:]], dtype=float)
+    pos = np.array([x.split()[1:] for x in lines[7:-3]], dtype=float)
+    np.testing.assert_allclose(np.array([x.split() for x in lines[-3:]], float), cell)
     assert (pos.min(axis=0) > 5.99).all() and (box - pos.max(axis=0) > 5.99).all()
     state = json.loads((work / "command.json").read_text())
     assert state["frame"]["boxed"] and np.allclose(pos - state["frame"]["shift"], ring.positions)
@@ -553,6 +559,9 @@ def test_box_placeholder_and_input_agree_on_every_step(tmp_path):
     text = (tmp_path / "per" / "job.inp").read_text().splitlines()
     assert text[1] == "boxed false" and text[2] == "periodic XY"
     np.testing.assert_allclose(np.array(text[0].split()[1:], float), graphite.cell.lengths(), 1e-5)
+    # the skewed cell vector by vector (${cell_a} ...), as ASE holds it
+    vectors = np.array([x.split() for x in text[-3:]], dtype=float)
+    np.testing.assert_allclose(vectors, np.asarray(graphite.cell), atol=1e-6)
 
 
 def test_placeholder_names_may_not_shadow_builtins(tmp_path):
@@ -609,6 +618,59 @@ def test_version_is_what_the_program_printed(water_run, tmp_path):
     with pytest.raises(ConfigError, match="capturing group"):
         _campaign(tmp_path, {**COMMAND, "outputs": {**COMMAND["outputs"], "version": {
             "file": "job.log", "regex": "PySCF"}}})  # fmt: skip
+
+
+def test_charge_schemes_scf_count_and_a_restart_the_program_ignored(water_run, tmp_path):
+    """outputs.charges as a list: every scheme goes into charge_sets (the first is the main
+    one), each checked against PySCF's own analysis; outputs.scf_iterations is the program's
+    last iteration line; restart.not_used turns files in place into a cold start when the
+    program says it started from its own guess."""
+    from pyscf import dft, gto
+
+    _, _, work, atoms = water_run
+    copy = tmp_path / "engine"
+    shutil.copytree(work, copy)
+    outputs = {
+        **COMMAND["outputs"],
+        "charges": [
+            {"file": "job.log", "regex": r"^atom\s+\d+\s+\S+\s+meta-lowdin\s+(\S+)",
+             "scheme": "meta-lowdin"},
+            COMMAND["outputs"]["charges"],
+        ],
+        "scf_iterations": {"file": "job.log", "regex": r"^iteration (\d+) energy"},
+    }  # fmt: skip
+    restart = {**COMMAND["restart"], "not_used": {"file": "job.log", "regex": "^initial guess:"}}
+    engine = get_engine(_campaign(tmp_path, {**COMMAND, "outputs": outputs, "restart": restart}))
+    result, _ = engine.collect(copy)
+    # reference: PySCF directly, the runner's settings (LDA/STO-3G, grid level 1)
+    mol = gto.M(atom=[(a.symbol, tuple(a.position)) for a in atoms], basis="sto-3g", verbose=0)
+    mf = dft.RKS(mol)
+    mf.xc, mf.grids.level, mf.conv_tol = "lda,vwn", 1, 1e-9
+    mf.kernel()
+    assert result.charge_scheme == "meta-lowdin" and set(result.charge_sets) == {
+        "meta-lowdin", "mulliken"}  # fmt: skip
+    np.testing.assert_allclose(result.charges, mf.mulliken_meta(verbose=0)[1], atol=1e-5)
+    np.testing.assert_allclose(result.charge_sets["mulliken"], mf.mulliken_pop(verbose=0)[1],
+                               atol=1e-5)  # fmt: skip
+    lines = re.findall(r"^iteration (\d+)", (copy / "job.log").read_text(), flags=re.MULTILINE)
+    assert result.scf_iterations == int(lines[-1]) == len(lines) > 1
+    assert not result.warm_started  # no restart files in place: nothing to judge
+
+    # restart files in place, but the program says it started from atoms
+    state = json.loads((copy / "command.json").read_text())
+    state["restart"] = "previous step"
+    (copy / "command.json").write_text(json.dumps(state))
+    result, _ = engine.collect(copy)
+    assert not result.warm_started
+    assert any("did not use the restart files" in n for n in result.notes)
+    # ... and when it does not say so, the files in place count
+    log = copy / "job.log"
+    log.write_text(log.read_text().replace("initial guess: superposition", "guess: superposition"))
+    assert engine.collect(copy)[0].warm_started
+    # a list of charge schemes names each scheme once
+    twice = {**outputs, "charges": [COMMAND["outputs"]["charges"]] * 2}
+    with pytest.raises(ConfigError, match="each charge scheme once"):
+        _campaign(tmp_path, {**COMMAND, "outputs": twice})
 
 
 def test_warm_start_only_from_a_step_with_the_same_atoms(tmp_path):
@@ -741,7 +803,9 @@ def test_quantum_espresso_input_has_a_cell_on_every_step_and_periodic_kpoints(tm
 
     sheet = Atoms("C2", positions=[[0, 0, 5], [1.23, 0.71, 5]], pbc=True)
     sheet.cell = [[2.46, 0, 0], [-1.23, 2.1304, 0], [0, 0, 10]]
-    qe = engine({"input": {"parameters": {"kpts": [6, 6, 1]}}})
+    # an explicit mesh in place of the definition's k-point spacing (its header says how)
+    mesh = {"settings": {"kpoint_spacing": None}, "input": {"parameters": {"kpts": [6, 6, 1]}}}
+    qe = engine(mesh)
     qe.prepare(sheet, tmp_path / "sheet", ComputeContext(step=0))
     text = (tmp_path / "sheet" / "pw.in").read_text()
     assert "assume_isolated  = 'none'" in text and "K_POINTS automatic\n6 6 1" in text

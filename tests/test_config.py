@@ -100,3 +100,22 @@ def test_shipped_configs_validate_against_the_schema():
     schema = json.loads((root / "campaign.schema.json").read_text())
     for f in sorted(root.glob("*.yaml")):
         jsonschema.validate(yaml.safe_load(f.read_text()), schema)
+
+
+def test_schema_accepts_an_engine_definition_by_name():
+    # a config file may name an engine definition (merged before the models see it); the
+    # exported schema (checked with jsonschema, a reference implementation) says so, and still
+    # refuses a misspelt key of an engine given in full
+    jsonschema = pytest.importorskip("jsonschema")
+    schema = json.loads(campaign_schema())
+    base = {"name": "x", "host": {"builder": {"kind": "graphite"}}}
+    for engine in (
+        {"definition": "quantum-espresso"},
+        {"definition": "quantum-espresso", "settings": {"kpoint_spacing": 0.04}},
+    ):
+        jsonschema.validate({**base, "engine": engine}, schema)
+        screen = {"rule": "screened", "screen": {"engine": engine}}
+        jsonschema.validate({**base, "placement": screen}, schema)
+    for engine in ({"kind": "pyscf", "xcc": "lda"}, {"settings": {}}):
+        with pytest.raises(jsonschema.ValidationError):
+            jsonschema.validate({**base, "engine": engine}, schema)

@@ -214,3 +214,40 @@ def test_benzene_li_campaign_puts_the_first_li_above_the_ring_face(tmp_path):
     li = read(engine1 / "input.extxyz")
     assert li.get_chemical_symbols()[-1] == "Li"
     np.testing.assert_allclose(li.positions[-1], well.position, atol=1e-6)
+
+
+def test_a_periodic_structure_gets_the_kpoint_mesh_of_the_spacing(tmp_path):
+    """H2 in a periodic hexagonal cell (a = b = c = 7 Å, gamma = 120°) keeps its cell and gets
+    the Gamma-centred mesh of the definition's kpoint_spacing, by ASE's kspacing rule (3 3 2
+    here), as GPAW's own log reports it; the map is periodic. A molecular crystal this dilute
+    has flat bands (H2's levels barely disperse at 6 Å between molecules), so the k-point
+    mesh and the Gamma point alone (kpoint_spacing: null) give the same energy per cell."""
+    from ase import Atoms
+    from ase.geometry import cellpar_to_cell
+    from ase.io.espresso import kspacing_to_grid
+
+    from ionwell.engine_check import check_campaign
+    from ionwell.engines.base import ComputeContext
+    from ionwell.engines.run import run_engine
+
+    campaign = check_campaign("gpaw", tmp_path)
+    h2 = Atoms("H2", positions=[[0, 0, 0], [0, 0, 0.74]], pbc=True,
+               cell=cellpar_to_cell([7.0, 7.0, 7.0, 90, 90, 120]))  # fmt: skip
+    h2.center()
+    done = run_engine(campaign, h2, tmp_path / "per", ComputeContext(step=0))
+    mesh = kspacing_to_grid(h2, _definition()["settings"]["kpoint_spacing"])
+    assert list(mesh) == [3, 3, 2]
+    text = (tmp_path / "per" / "gpaw.txt").read_text()
+    # GPAW 22.8 writes e.g. "18 k-points: 3 x 3 x 2 Monkhorst-Pack grid + [...]"
+    assert "3 x 3 x 2 Monkhorst-Pack grid" in text, text[:3000]
+    assert done.result.scf_converged and done.potential.pbc == (True, True, True)
+    assert done.result.homo is not None and done.result.homo < done.result.lumo
+
+    engine = campaign.engine.model_copy(
+        update={"settings": {**campaign.engine.settings, "kpoint_spacing": None}}
+    )
+    gamma = run_engine(campaign.model_copy(update={"engine": engine}), h2, tmp_path / "gamma",
+                       ComputeContext(step=0))  # fmt: skip
+    assert "Monkhorst-Pack" not in (tmp_path / "gamma" / "gpaw.txt").read_text()
+    log.info("H2 crystal: 3x3x2 %.4f eV, Gamma %.4f eV", done.result.energy, gamma.result.energy)
+    assert abs(done.result.energy - gamma.result.energy) < 0.02

@@ -12,9 +12,15 @@ from ase.build import bulk
 from scipy.spatial import cKDTree
 from scipy.spatial.distance import cdist, pdist
 
-from ionwell.config import FlakeBuilder, HostConfig
+from ionwell.config import FlakeBuilder, GraphiteBuilder, HostConfig
 from ionwell.errors import StructureError
-from ionwell.host import build_flake, host_formula_units, load_host, read_structure
+from ionwell.host import (
+    build_flake,
+    build_graphite,
+    host_formula_units,
+    load_host,
+    read_structure,
+)
 
 BOND_CUTOFF = 1.6  # Å: covalent C–C / C–H bonds are shorter, non-bonded contacts longer
 
@@ -297,3 +303,74 @@ def test_host_formula_units() -> None:
         host_formula_units(atoms, {"Li": 1})
     with pytest.raises(StructureError, match="different number"):
         host_formula_units(atoms, {"C": 6, "H": 1})
+
+
+# ---------------------------------------------------------------------------------------------
+# periodic graphite
+
+
+def _distance_spectrum(atoms: Atoms, cutoff: float = 6.0) -> np.ndarray:
+    """Every atom's sorted neighbour distances up to ``cutoff`` (minimum image, all images),
+    pooled and sorted: a fingerprint that two cells of the same crystal share per atom."""
+    from ase.neighborlist import neighbor_list
+
+    d = neighbor_list("d", atoms, cutoff)
+    return np.sort(np.round(d, 6)) if len(d) else d
+
+
+def _same_crystal(a: Atoms, b: Atoms) -> None:
+    # the same crystal in two cells: equal density, equal distance spectrum per atom
+    assert len(a) / a.get_volume() == pytest.approx(len(b) / b.get_volume(), rel=1e-9)
+    sa, sb = _distance_spectrum(a), _distance_spectrum(b)
+    assert len(sa) / len(a) == pytest.approx(len(sb) / len(b))
+    # per atom: compare the spectra of equal-size supercells
+    ra = np.sort(np.tile(sa, len(b)))
+    rb = np.sort(np.tile(sb, len(a)))
+    np.testing.assert_allclose(ra, rb, atol=1e-6)
+
+
+@pytest.mark.parametrize("cell", ["sqrt3", 1, 2])
+def test_periodic_graphite_ab_is_ase_graphite(cell) -> None:
+    from ase.lattice.hexagonal import Graphite
+
+    # ASE's Graphite has the Bernal (AB) basis (handbook structure): the same crystal as ours at
+    # a = 2.46 Å, c = 2 x 3.35 Å, whatever the in-plane cell
+    ours = build_graphite(GraphiteBuilder(kind="graphite", cell=cell))
+    ref = Graphite("C", latticeconstant={"a": 2.46, "c": 6.70})
+    _same_crystal(ours, ref)
+    assert ours.pbc.all() and ours.cell.cellpar()[5] == pytest.approx(120.0)
+    assert len(ours) == {"sqrt3": 12, 1: 4, 2: 16}[cell]
+    assert sorted(set(ours.get_tags())) == [0, 1]
+    # sheets at a quarter and three quarters of the cell height: one gallery across the face
+    z = ours.positions[:, 2]
+    np.testing.assert_allclose(np.unique(np.round(z, 6)), [1.675, 5.025])
+
+
+def test_periodic_graphite_aa_is_stacked_graphene() -> None:
+    from ase.build import graphene
+
+    # AA: graphene sheets (ASE's builder) stacked straight above each other, 3.7 Å apart
+    sheet = graphene("C2", a=2.46, vacuum=None)
+    sheet.cell[2] = [0.0, 0.0, 3.7]
+    sheet.pbc = True
+    ours = build_graphite(GraphiteBuilder(kind="graphite", stacking="AA", spacing=3.7))
+    _same_crystal(ours, sheet)
+
+
+def test_periodic_graphite_bonds_and_load_host(tmp_path: Path) -> None:
+    host = HostConfig(builder={"kind": "graphite", "layers": 4, "cell": 2})
+    atoms = load_host(host, tmp_path)
+    assert atoms.get_chemical_formula() == "C32" and atoms.cell[2][2] == pytest.approx(4 * 3.35)
+    d = atoms.get_all_distances(mic=True)
+    np.fill_diagonal(d, np.inf)
+    # sp2 carbon (common practice): three neighbours at a/√3 = 1.420 Å, none closer
+    assert d.min() == pytest.approx(2.46 / np.sqrt(3), abs=1e-6)
+    assert ((d < BOND_CUTOFF).sum(axis=1) == 3).all()
+    # configs from before the graphite builder (no 'kind') still build flakes
+    assert HostConfig(builder={"layers": 1, "shells": 1}).builder.kind == "flake"
+    with pytest.raises(ValueError, match="flake' or 'graphite"):
+        HostConfig(builder={"kind": "graphene"})
+    # AB repeats every two sheets: an odd count per cell would stack A on A across the cell face
+    with pytest.raises(ValueError, match="even number of layers"):
+        GraphiteBuilder(kind="graphite", layers=3)
+    assert len(build_graphite(GraphiteBuilder(kind="graphite", layers=3, stacking="AA"))) == 18

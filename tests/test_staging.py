@@ -419,3 +419,33 @@ def test_four_layers_alternate_galleries_is_stage_2():
     # common practice: filled galleries every 2nd -> stage 2
     assert rep.stage == 2 and rep.staging == "regular"
     assert rep.registries == ["AB", "AB", "AB"]
+
+
+@pytest.mark.parametrize("shift", [(0, 0, 0), (0, 0, 1), (0, 0, -1), (1, -1, 0), (-2, 1, 1)])
+def test_guest_across_the_cell_face_is_in_the_wrapping_gallery(shift):
+    from ase.geometry import get_distances
+
+    from ionwell.config import GraphiteBuilder
+    from ionwell.host import build_graphite
+
+    # ionwell's periodic AB graphite (sheets at c/4 and 3c/4; the same crystal as ASE's Graphite,
+    # tests/test_host.py): the gallery across the cell's face z = 0 is the one between the top
+    # sheet and the image of the bottom one. A Li on its mid-plane, over a hexagon centre of the
+    # lower sheet, given in any periodic image (whole lattice vectors), is in that gallery, and
+    # the report is the same; one of two galleries filled -> stage 2 (common practice)
+    host = build_graphite(GraphiteBuilder(kind="graphite"))
+    cell = np.asarray(host.cell)
+    site = np.array([0.0, 0.0, 0.0])  # z = 0: mid-plane between 5.025 and 1.675 + 6.7
+    _, d = get_distances([site], host.positions, cell=cell, pbc=True)
+    # ASE's minimum image: the nearest atom is straight above, across the face (an atom of the
+    # image of sheet 0); below lies a hexagon centre of sheet 1, its atoms farther away
+    assert d.min() == pytest.approx(D_GRAPHITE / 2, abs=1e-6)
+    assert np.sort(d[0])[1] == pytest.approx(np.hypot(D_GRAPHITE / 2, CC), abs=0.01)
+    atoms = host + Atoms("Li", positions=[site + np.asarray(shift) @ cell])
+    rep = layer_report(atoms, range(len(host)), [len(host)])
+    wrap = [g for g in rep.galleries if g.periodic_image]
+    assert len(rep.galleries) == 2 and len(wrap) == 1
+    assert wrap[0].guest_indices == [len(host)] and rep.guests_outside == 0
+    assert rep.stage == 2 and rep.staging == "regular"
+    assert rep.registries == ["AB", "AB"]
+    assert rep.spacings == pytest.approx([D_GRAPHITE] * 2, abs=1e-9)

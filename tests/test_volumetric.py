@@ -489,7 +489,7 @@ MALFORMED = {
     "sidecar unit conflict": (_sidecar_unit_conflict, "config gives unit 'V'"),
     "npz without values": (_npz_ambiguous, "expected one named 'values'"),
     "not a numpy file": (_not_numpy, "not a NumPy .npy file or .npz archive"),
-    "truncated npy": (_truncated_npy, "not a readable NumPy"),
+    "truncated npy": (_truncated_npy, "the array header declares"),
     "truncated npz": (_truncated_npz, "npz"),
     "sidecar sign conflict": (_sidecar_sign_conflict, "config gives sign 'potential'"),
     "xsf without data grid": (_xsf_without_grid, "XSF"),

@@ -14,7 +14,8 @@ finished campaign or one still running — and writes into ``analysis/``:
 * ``charges.csv`` (mean guest charge, electrons gained by the host, rim / interior),
   ``charges.png``; ``electronic.csv`` (Fermi level or HOMO and its shift), ``dos.csv``,
   ``dos.png``;
-* ``analysis.json``, the :class:`AnalysisSummary` listing the files in reading order.
+* ``analysis.json``, the :class:`AnalysisSummary` listing the files in reading order, with
+  the stage and the stacking registries of every step of a layered host (:class:`StepLayers`).
 
 The numbers come from pure modules (:mod:`ionwell.energetics`, :mod:`ionwell.diagnostics`,
 :mod:`ionwell.dos`), the figures from :mod:`ionwell.plots`; this module reads and writes.
@@ -37,7 +38,7 @@ from pydantic import BaseModel, ValidationError
 from ionwell import energetics, plots
 from ionwell.campaign import CampaignPaths, atomic_write_text, load_frozen
 from ionwell.checks import Finding, voltage_findings
-from ionwell.config import AnalysisConfig, format_validation_error
+from ionwell.config import AnalysisConfig, format_validation_error, read_yaml
 from ionwell.diagnostics import diagnose
 from ionwell.dos import dos_on_grid, frontier_level
 from ionwell.engines.base import StepResult
@@ -49,6 +50,7 @@ from ionwell.store.paths import StepPaths, step_label
 __all__ = [
     "AnalysisSummary",
     "Reference",
+    "StepLayers",
     "analyse",
     "analysis_settings",
     "guest_reference",
@@ -73,6 +75,23 @@ class Reference(BaseModel):
     bulk_atoms: int | None = None
     cohesive_energy: float | None = None  # eV per atom
     key: dict | None = None  # the settings μ was established with (reference, engine, guest)
+
+
+class StepLayers(BaseModel):
+    """The layer analysis of one step in ``analysis.json`` (the summary of ``layers.csv``;
+    :func:`ionwell.staging.layer_report`). Heights and spacings in Å."""
+
+    step: int
+    guests: int
+    layers: int
+    periodic: bool  # the stack repeats along its normal (a cell periodic along it)
+    stage: int | None
+    staging: str | None
+    #: per gallery, in stacking order: "AA", "AB", "other", "undetermined" or None
+    registries: list[str | None]
+    gallery_guests: list[int]
+    spacings: list[float]
+    guests_outside: int
 
 
 class AnalysisSummary(BaseModel):
@@ -100,6 +119,8 @@ class AnalysisSummary(BaseModel):
     structures: list[str] = []
     #: the filling-sequence figure (relative to the analysis folder), if drawn
     filling: str | None = None
+    #: per step of a layered host: layers, stage, registry of each gallery (empty otherwise)
+    layers: list[StepLayers] = []
 
 
 def _reference_file(paths: CampaignPaths) -> Path:
@@ -132,16 +153,7 @@ def parse_settings(data: object, source: str) -> AnalysisConfig:
 def read_settings_file(path: str | Path) -> AnalysisConfig:
     """Analysis settings from a YAML file (see :func:`parse_settings`)."""
     path = Path(path)
-    try:
-        text = path.read_text()
-    except OSError as err:
-        raise ConfigError(f"{path}: cannot read analysis settings ({err.strerror})") from None
-    except UnicodeDecodeError:
-        raise ConfigError(f"{path}: not a text file (expected YAML analysis settings)") from None
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as err:
-        raise ConfigError(f"{path}: not valid YAML ({err})") from None
+    data = read_yaml(path, "YAML analysis settings")
     return parse_settings(data, str(path))
 
 
@@ -436,6 +448,7 @@ def analyse(root: str | Path, settings: AnalysisConfig | None = None) -> Analysi
         findings=[f.model_dump(mode="json") for f in found],
         structures=tables.structures,
         filling=tables.filling,
+        layers=tables.layers,
     )
     if summary.caution:
         log.warning("analysis: %s", summary.caution)
@@ -462,6 +475,7 @@ class _Tables(NamedTuple):
     charge_scheme: str | None
     structures: list[str]
     filling: str | None
+    layers: list[StepLayers]
 
 
 #: order in which ``charge_scheme: auto`` takes the schemes the engine recorded
@@ -601,7 +615,22 @@ def _step_tables(
     )
     if filling:
         files.insert(0, filling)
-    return _Tables(files, scheme, structures, filling)
+    layers = [
+        StepLayers(
+            step=d.step,
+            guests=d.guests,
+            layers=d.layers or 0,
+            periodic=any(g.periodic_image for g in d.galleries),
+            stage=d.stage,
+            staging=d.staging,
+            registries=[g.registry for g in d.galleries],
+            gallery_guests=[g.guests for g in d.galleries],
+            spacings=[round(g.spacing, 4) for g in d.galleries],
+            guests_outside=d.guests_outside or 0,
+        )
+        for d in layered
+    ]
+    return _Tables(files, scheme, structures, filling, layers)
 
 
 def _views(out: Path, campaign, records, frames: list[Atoms], diags, n_host: int, caution: str):

@@ -27,7 +27,7 @@ from pathlib import Path
 from typing import ClassVar
 
 from ionwell.config import Campaign, config_diff, dump_campaign, load_campaign
-from ionwell.errors import ConfigError, LockError
+from ionwell.errors import ConfigError, LockError, naming_file
 
 log = logging.getLogger(__name__)
 
@@ -116,11 +116,12 @@ def atomic_write_bytes(path: Path, data: bytes) -> None:
     """Write ``data`` to ``path`` so that readers see either the old file or the whole new one."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    with naming_file(path):
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
         # mkstemp makes the file private (0600); give it the mode a plain open() would
         os.fchmod(fd, _FILE_MODE)
-        with os.fdopen(fd, "wb") as fh:
+        with naming_file(path), os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
             os.fsync(fh.fileno())
@@ -167,7 +168,7 @@ def append_event(paths: CampaignPaths, **fields: object) -> None:
     """Append one line to ``events.jsonl`` (time, pid, host added)."""
     rec = {"time": time.time(), "pid": os.getpid(), "host": socket.gethostname(), **fields}
     paths.root.mkdir(parents=True, exist_ok=True)
-    with open(paths.events, "a") as fh:
+    with naming_file(paths.events), open(paths.events, "a") as fh:
         fh.write(json.dumps(rec, sort_keys=True) + "\n")
         fh.flush()
         os.fsync(fh.fileno())
@@ -372,10 +373,15 @@ class ControllerLock:
                     self.path.unlink()
                 stale = True
                 continue
-            with os.fdopen(fd, "w") as fh:
-                json.dump(mine, fh)
-                fh.flush()
-                os.fsync(fh.fileno())
+            try:
+                with naming_file(self.path), os.fdopen(fd, "w") as fh:
+                    json.dump(mine, fh)
+                    fh.flush()
+                    os.fsync(fh.fileno())
+            except OSError:  # e.g. a full disk: leave no empty lock behind
+                with contextlib.suppress(OSError):
+                    self.path.unlink()
+                raise
             return stale
         raise LockError(f"{self.path}: could not take the controller lock")
 

@@ -109,12 +109,16 @@ def _run_snakemake(argv: list[str], lock, verbose: bool = False) -> int:
 
     old = {s: signal.signal(s, _stop) for s in (signal.SIGINT, signal.SIGTERM)}
     held: collections.deque[str] = collections.deque(maxlen=60)
+    failed: list[str] = []
     try:
         if child.stdout is not None:
             for line in child.stdout:
                 if _OWN_LINE.match(line):
                     sys.stderr.write(line)
                     sys.stderr.flush()
+                    m = _FAILED_LINE.search(line)
+                    if m:
+                        failed.append(m.group(1).strip())
                 elif line.strip():
                     held.append(line)
         rc = child.wait()
@@ -123,11 +127,33 @@ def _run_snakemake(argv: list[str], lock, verbose: bool = False) -> int:
             signal.signal(s, h)
     if rc != 0:
         _LAST_LINES[:] = list(held)
+        _FAILURES[:] = failed
     return rc
 
 
 #: Snakemake's last lines of a failed invocation, shown when ionwell has no message of its own
 _LAST_LINES: list[str] = []
+#: what the step bodies said when they failed (ionwell's own "step NNNN failed: ..." lines)
+_FAILURES: list[str] = []
+_FAILED_LINE = re.compile(r"step \d{4,} failed: (.*)$")
+
+
+def _cause_from_output(paths):
+    """The failure of a Snakemake invocation that left no ``error.json`` (a full disk cannot
+    take one), from what the step bodies logged or from Snakemake's last lines; recorded as
+    the step's error where possible, so ``ionwell status`` shows it too. None: no cause seen."""
+    from ionwell.errors import disk_full_text
+    from ionwell.workflow.summary import record_error
+
+    message = _FAILURES[-1] if _FAILURES else None
+    if message is None:
+        lines = [x.strip() for x in _LAST_LINES if disk_full_text(x)]
+        if not lines:
+            return None
+        message = (
+            f"no space left on device ({lines[0]}); free space on that file system and run again"
+        )
+    return record_error(paths, message, "disk" if disk_full_text(message) else "transient")
 
 
 def _clear_snakemake_locks(root: Path) -> None:
@@ -199,9 +225,10 @@ def _heartbeat(lock, stop: threading.Event) -> None:
 
 def cmd_run(args: argparse.Namespace) -> int:
     from ionwell.campaign import CampaignPaths, ControllerLock
-    from ionwell.config import load_campaign
+    from ionwell.config import load_campaign, stop_rule_note
     from ionwell.ledger import check_chain, check_inputs, last_record, repair_tail
     from ionwell.status import campaign_status, format_status
+    from ionwell.workflow.chain import republish_statuses
     from ionwell.workflow.extend import amend, finish_amendment, handover, pending_amendment
     from ionwell.workflow.plan import WINDOW_KEY, resolve_host_path
     from ionwell.workflow.setup import prepare_campaign
@@ -213,7 +240,10 @@ def cmd_run(args: argparse.Namespace) -> int:
     base = config.resolve().parent
     paths = CampaignPaths(root / "campaigns" / campaign.name)
     if not paths.config.exists():  # a new campaign: frozen before anything else is written
-        prepare_campaign(campaign, root, base)
+        prepare_campaign(campaign, root, base, str(config))
+        note = stop_rule_note(campaign)
+        if note:
+            print(f"ionwell: note: {note}")
     lock = ControllerLock(paths.lock)
     stale = lock.acquire()
     beat = threading.Event()
@@ -233,6 +263,10 @@ def cmd_run(args: argparse.Namespace) -> int:
             print(f"ionwell: {torn}")
         check_chain(paths)
         check_inputs(paths)
+        republished = republish_statuses(paths)
+        if republished:
+            steps = ", ".join(str(n) for n in republished)
+            print(f"ionwell: re-published the missing status.json of step(s) {steps}")
         extended = handover(paths, resolved)
         if extended:
             print(f"ionwell: {extended}")
@@ -259,12 +293,15 @@ def cmd_run(args: argparse.Namespace) -> int:
     if returncode == 0 and report.is_file():
         print(f"report (tables and plots, open in a browser): {report}")
     if returncode != 0:
-        err = describe_error(paths)
+        err = describe_error(paths) or _cause_from_output(paths)
         if err is None and _LAST_LINES:
             sys.stderr.write("ionwell: Snakemake's last lines:\n" + "".join(_LAST_LINES))
-        why = err.message if err else "Snakemake failed; see its last lines above"
+        why = "Snakemake failed; see its last lines above"
+        if err is not None:
+            named = err.message.startswith(f"step {err.step}")
+            why = err.message if named else f"step {err.step}: {err.message}"
         print(f"ionwell: error: campaign '{campaign.name}' did not finish: {why}", file=sys.stderr)
-        return 1
+        return 2 if err is not None and err.kind == "input" else 1
     return 0
 
 
@@ -556,6 +593,13 @@ def main(argv: list[str] | None = None) -> int:
     except IonwellError as err:
         print(f"ionwell: error: {err}", file=sys.stderr)
         return 2
+    except OSError as err:
+        from ionwell.errors import describe_exception, error_kind
+
+        if error_kind(err) != "disk":
+            raise
+        print(f"ionwell: error: {describe_exception(err)}", file=sys.stderr)
+        return 1
     except KeyboardInterrupt:
         print("ionwell: interrupted", file=sys.stderr)
         return 130

@@ -1,12 +1,16 @@
 """``ionwell place``: find the wells of one potential map and say where a guest would go.
 
-    ionwell place POTENTIAL.cube [--structure FILE] [--guest EL] [--exclusion EL=ANGSTROM ...]
+    ionwell place POTENTIAL.cube [--structure FILE] [--guest EL] [--exclusion EL=ANGSTROM]...
                   [--within ANGSTROM] [--sign auto|potential|electron] [--galleries]
                   [--rule deepest|thermal] [--count N] [--separation ANGSTROM]
                   [--temperature K] [--seed N] [--step N] [--wells N] [--json]
 
-The map is a Gaussian cube (atoms taken from it unless ``--structure`` is given) or a ``.npz``
-grid written by ionwell (then ``--structure`` is required). Positions are printed in Å in the
+The map is a Gaussian cube or XSF file (atoms taken from it unless ``--structure`` is given,
+which must then be the map's atoms), a ``.npy``/``.npz`` array with its JSON sidecar, or a
+``.npz`` grid written by ionwell (then ``--structure`` is required). Maps and structures are read
+and checked by the campaign's own readers (:func:`ionwell.volumetric.read_map`,
+:func:`ionwell.host.read_structure`); a map whose header says it holds a density or an orbital
+is refused unless ``--assume-potential`` is given. Positions are printed in Å in the
 map's own Cartesian frame, potentials in volts. The choice is made by
 :func:`ionwell.placement.decide` with the settings a campaign would use, so what this command
 prints is what a campaign step would do with the same map. Exit status 0 when a site is chosen,
@@ -27,7 +31,7 @@ from pydantic import ValidationError
 
 from ionwell import grid as gridmod
 from ionwell.config import PlacementConfig
-from ionwell.errors import GridError, IonwellError, PlacementError, StructureError
+from ionwell.errors import GridError, PlacementError
 from ionwell.placement import Decision, decide
 
 __all__ = ["add_parser", "run"]
@@ -147,12 +151,12 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
     p.add_argument(
         "--exclusion",
         metavar="EL=ANGSTROM",
-        nargs="+",
-        action="extend",
+        action="append",
         type=_exclusion_item,
         default=[],
-        help="minimum guest distance to atoms of an element, e.g. C=1.6 H=1.2 "
-        "(default: 0.75 × sum of covalent radii)",
+        help="minimum guest distance to atoms of one element, e.g. C=1.6; repeat the option for "
+        "more elements: --exclusion C=1.6 --exclusion H=1.2 (default: 0.75 × sum of covalent "
+        "radii)",
     )
     p.add_argument(
         "--within",
@@ -168,6 +172,12 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
         help="sign convention of the map: 'potential' (nuclei are maxima), 'electron' (nuclei "
         "are minima) or 'auto' (tell from the values near the nuclei; .npz grids are stored in "
         "the potential convention). Default: auto",
+    )
+    p.add_argument(
+        "--assume-potential",
+        action="store_true",
+        help="read the map as an electrostatic potential even when its header names a density, "
+        "an orbital or ELF (such maps are refused otherwise)",
     )
     p.add_argument(
         "--galleries",
@@ -230,39 +240,53 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
     return p
 
 
-def _read_structure(path: Path) -> Atoms:
-    from ase.io import read
-
-    try:
-        atoms = read(path)
-    except FileNotFoundError:
-        raise StructureError(f"{path}: structure file not found") from None
-    except Exception as err:  # ASE raises many kinds for unreadable files
-        raise StructureError(f"{path}: cannot read the structure ({err})") from None
-    if isinstance(atoms, list):  # pragma: no cover - read() returns the last image by default
-        atoms = atoms[-1]
-    if len(atoms) == 0:
-        raise StructureError(f"{path}: the structure holds no atoms")
-    return atoms
-
-
 def _load(args: argparse.Namespace) -> tuple[gridmod.Grid, Atoms, str]:
-    """The grid in the potential convention, its atoms, and the convention it was read in."""
+    """The grid in the potential convention, its atoms, and the convention it was read in.
+
+    Through the campaign's readers and checks: :func:`ionwell.host.read_structure` for
+    ``--structure``, :func:`ionwell.volumetric.read_map` for the map (which refuses a structure
+    that is not the map's own atoms, moved by one shift at most), the map's own atoms checked
+    as a structure file's are.
+    """
+    from ionwell.engine_config import PotentialSpec
+    from ionwell.host import check_atoms, read_structure
+    from ionwell.volumetric import SUFFIXES, not_a_potential, read_map, sidecar_path
+
     path = Path(args.potential)
-    if path.suffix.lower() == ".npz":
-        if not args.structure:
+    atoms = read_structure(Path(args.structure)) if args.structure else None
+    fmt = SUFFIXES.get(path.suffix.lower(), "cube")
+    if fmt == "npz" and not sidecar_path(path).exists():
+        # a grid stored by ionwell (a step's potential.npz), in the potential convention
+        if atoms is None:
             raise GridError(f"{path}: a .npz grid holds no atoms; give them with --structure FILE")
-        grid = gridmod.load_npz(path)
-        atoms = _read_structure(Path(args.structure))
+        grid, atoms = _periodicity(args, gridmod.load_npz(path), atoms)
         sign = "potential" if args.sign == "auto" else args.sign
-    elif path.suffix.lower() in (".xsf", ".npy"):
-        return _load_general(args, path)
-    else:
-        grid, atoms = gridmod.read_cube(path)
-        if args.structure:
-            atoms = _read_structure(Path(args.structure))
-        sign = gridmod.detect_sign(grid, atoms) if args.sign == "auto" else args.sign
+        return gridmod.orient(grid, atoms, sign), atoms, sign
+    if fmt in ("npy", "npz") and atoms is None:
+        raise GridError(f"{path}: a .{fmt} grid holds no atoms; give them with --structure FILE")
+    if not args.assume_potential:
+        said = not_a_potential(path, fmt)
+        if said is not None:
+            raise GridError(
+                f"{path}: the header says {said!r}: not an electrostatic potential; expected a "
+                "potential map (e.g. a Hartree or electrostatic-potential cube). If the file "
+                "does hold a potential, give --assume-potential"
+            )
+    # cube and XSF are read as stored and their sign decided below; an array's sidecar may
+    # declare its sign, which the reader applies (or checks against an explicit --sign)
+    as_stored = fmt in ("cube", "xsf")
+    sign_spec = "potential" if as_stored else (None if args.sign == "auto" else args.sign)
+    spec = PotentialSpec(file=path.name, format=fmt, sign=sign_spec)
+    grid, file_atoms = read_map(path, spec, atoms=atoms, pbc=args.periodic)
+    if atoms is None:
+        if file_atoms is None or len(file_atoms) == 0:
+            raise GridError(f"{path}: the map lists no atoms; give them with --structure FILE")
+        check_atoms(file_atoms, path)
+        atoms = file_atoms
     grid, atoms = _periodicity(args, grid, atoms)
+    if not as_stored and args.sign != "auto":
+        return grid, atoms, args.sign  # applied by the reader
+    sign = gridmod.detect_sign(grid, atoms) if args.sign == "auto" else args.sign
     return gridmod.orient(grid, atoms, sign), atoms, sign
 
 
@@ -287,29 +311,15 @@ def _periodicity(args: argparse.Namespace, grid: gridmod.Grid, atoms: Atoms):
     return grid, atoms
 
 
-def _load_general(args: argparse.Namespace, path: Path):
-    """XSF and ``.npy`` + sidecar maps, through the campaign's own map reader."""
-    from ionwell.engine_config import PotentialSpec
-    from ionwell.volumetric import read_potential
-
-    atoms = _read_structure(Path(args.structure)) if args.structure else None
-    if atoms is None and path.suffix.lower() == ".npy":
-        raise GridError(f"{path}: a .npy grid holds no atoms; give them with --structure FILE")
-    # read as stored (the sign decided below, as for a cube)
-    spec = PotentialSpec(file=path.name, sign="potential")
-    try:
-        grid = read_potential(path, spec, atoms=atoms, pbc=args.periodic)
-    except IonwellError as err:
-        raise GridError(str(err)) from None
-    if atoms is None:  # an XSF carries its atoms
-        atoms = _read_structure(path)
-    grid, atoms = _periodicity(args, grid, atoms)
-    sign = gridmod.detect_sign(grid, atoms) if args.sign == "auto" else args.sign
-    return gridmod.orient(grid, atoms, sign), atoms, sign
-
-
 def _settings(args: argparse.Namespace) -> PlacementConfig:
     """The placement settings the options describe (the map is already oriented)."""
+    elements = [el for el, _ in args.exclusion]
+    twice = sorted({el for el in elements if elements.count(el) > 1})
+    if twice:
+        raise PlacementError(
+            f"--exclusion: {', '.join(twice)} given more than once; expected each element once "
+            "(e.g. --exclusion C=1.6 --exclusion H=1.2)"
+        )
     try:
         return PlacementConfig(
             rule=args.rule,

@@ -10,12 +10,22 @@ from __future__ import annotations
 import difflib
 import json
 import math
+import re
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
 import yaml
 from ase.data import atomic_numbers
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Discriminator,
+    Field,
+    Tag,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
 
 from ionwell.engine_config import (
     AseEngineConfig,
@@ -40,6 +50,7 @@ __all__ = [
     "TbliteEngineConfig",
     "ChecksConfig",
     "FlakeBuilder",
+    "GraphiteBuilder",
     "GuestConfig",
     "HostConfig",
     "PlacementConfig",
@@ -56,11 +67,15 @@ __all__ = [
     "format_validation_error",
     "load_campaign",
     "parse_campaign",
+    "read_yaml",
+    "stop_rule_note",
 ]
 
 
 class _Model(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    # finite numbers only, everywhere: a NaN or an infinity in a config is always a mistake (a
+    # NaN bound compares false and silently disables what it bounds)
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
 
 
 def _check_element(symbol: str) -> str:
@@ -93,12 +108,66 @@ class FlakeBuilder(_Model):
         return self
 
 
+class GraphiteBuilder(_Model):
+    """Periodic graphite: ``layers`` graphene sheets per cell, stacked along z, periodic in all
+    three directions (the host's own hexagonal cell, 120° between ``a`` and ``b``).
+
+    The in-plane cell is ``cell`` times the graphene primitive cell (``n``: n×n) or the
+    √3×√3 R30° cell (``"sqrt3"``, six carbons per sheet: the cell of LiC6). The cell height is
+    ``layers × spacing``, so the gallery between the top sheet and the image of the bottom one
+    is a gallery like the others. Defaults: a = 2.46 Å and 3.35 Å between sheets (graphite,
+    common practice; LiC6 has about 3.7 Å, AA stacked).
+    """
+
+    kind: Literal["graphite"]
+    layers: int = Field(2, ge=1, le=12, description="sheets per cell")
+    cell: Literal["sqrt3"] | int = Field(
+        "sqrt3", description="in-plane cell: 'sqrt3' (√3×√3 R30°) or n for n×n primitive cells"
+    )
+    stacking: Literal["AB", "AA"] = Field("AB", description="registry of adjacent sheets")
+    a: float = Field(2.46, gt=1.0, le=5.0, description="graphene lattice constant, Å")
+    spacing: float = Field(3.35, gt=1.0, le=20.0, description="interlayer spacing, Å")
+
+    @field_validator("cell")
+    @classmethod
+    def _cell(cls, v: str | int) -> str | int:
+        if isinstance(v, int) and not 1 <= v <= 8:
+            raise ValueError(f"in-plane cell n×n needs 1 <= n <= 8, got {v}")
+        return v
+
+    @model_validator(mode="after")
+    def _whole_period(self) -> GraphiteBuilder:
+        if self.stacking == "AB" and self.layers % 2:
+            raise ValueError(
+                f"AB stacking repeats every two sheets; {self.layers} sheets per cell would put "
+                "two A sheets face to face across the cell's face: give an even number of layers"
+            )
+        return self
+
+
+def _builder_kind(v: Any) -> str:
+    """The builder's kind; a builder without one is a flake (configs from before graphite)."""
+    if isinstance(v, dict):
+        return str(v.get("kind", "flake"))
+    return str(getattr(v, "kind", "flake"))
+
+
+Builder = Annotated[
+    Annotated[FlakeBuilder, Tag("flake")] | Annotated[GraphiteBuilder, Tag("graphite")],
+    Discriminator(
+        _builder_kind,
+        custom_error_type="builder_kind",
+        custom_error_message="host.builder.kind must be 'flake' or 'graphite'",
+    ),
+]
+
+
 class HostConfig(_Model):
     """The host: a structure file in any ASE-readable format, or builder parameters."""
 
     file: str | None = Field(None, description="structure file, relative to the config file")
     format: str | None = Field(None, description="ASE format name if not guessed from suffix")
-    builder: FlakeBuilder | None = None
+    builder: Builder | None = None
     formula_unit: dict[str, int] | None = Field(
         None, description="host formula unit for x, e.g. {C: 6}; default: whole host"
     )
@@ -333,6 +402,15 @@ class ComputeResources(_Model):
     walltime_factor: float = Field(
         2.0, ge=1.0, le=10.0, description="each retry gets this factor more time than the last"
     )
+    stop_before: int = Field(
+        120,
+        ge=0,
+        le=86400,
+        description="seconds before the time limit at which a SLURM compute job is sent SIGUSR1 "
+        "(--signal=USR1@N), so an external program with a soft stop stops cleanly with its "
+        "restart files and the retry continues from them; at most half the first attempt's "
+        "limit is used; 0: no warning",
+    )
     partition: str | None = Field(None, description="partition (SLURM) or queue (PBS)")
     account: str | None = Field(None, description="account to charge")
     extra: str | None = Field(None, description="further scheduler flags, e.g. '--qos=long'")
@@ -470,6 +548,17 @@ class StopConfig(_Model):
         None, description="stop when the deepest admissible well lies above this potential, V"
     )
 
+    @model_validator(mode="after")
+    def _reachable(self) -> StopConfig:
+        targets = [f"{k}: {v:g}" for k in ("guests", "guests_per_unit") if (v := getattr(self, k))]
+        if self.max_steps == 0 and targets:
+            raise ValueError(
+                f"max_steps 0 computes the pristine host only (step 0 inserts no guest), so "
+                f"{' and '.join(targets)} can never be reached; expected max_steps ≥ 1 with a "
+                "guest target, or no guest target to compute the host alone"
+            )
+        return self
+
 
 class Campaign(_Model):
     """One insertion series: one host, one guest species, one engine, one placement rule."""
@@ -510,20 +599,54 @@ class Campaign(_Model):
 # loading, errors, diff, schema
 
 
+#: a part of an error location that names a member of a union, not a field (pydantic adds the
+#: member's label: the tag of a discriminated union, or the type of a plain union's member)
+_UNION_LABEL = re.compile(
+    r"^(function-.*|int|float|str|bool|none|[a-z-]+\[.*\]"
+    r"|[A-Z][A-Za-z]*(Spec|Config|Builder|Region|Reference|Pattern|Choice))$"
+)
+_TAGGED = {"engine": {"pyscf", "tblite", "ase", "command"}, "builder": {"flake", "graphite"}}
+
+
+def _field_path(loc: tuple) -> str:
+    """The field as the user writes it: ``engine.potential_grid.spacing``, not pydantic's
+    ``engine.pyscf.potential_grid.spacing``."""
+    parts: list[str] = []
+    for p in map(str, loc):
+        if _UNION_LABEL.match(p) or (parts and p in _TAGGED.get(parts[-1], ())):
+            continue
+        parts.append(p)
+    return ".".join(parts)
+
+
 def format_validation_error(err: ValidationError, source: str) -> str:
-    """One readable message naming each offending field and what was expected."""
-    lines = []
+    """One readable message naming each offending field and what was expected (one line for
+    one field; a union's alternatives for one field are joined)."""
+    by_field: dict[str, list[str]] = {}
+    found: dict[str, str] = {}
     for e in err.errors():
-        loc = ".".join(str(p) for p in e["loc"] if not str(p).startswith("function-"))
+        loc = _field_path(e["loc"]) or "(top level)"
         msg = e["msg"]
         if e["type"] == "extra_forbidden":
             msg = "unknown key (not a campaign option; check the spelling)"
         elif e["type"] == "missing":
             msg = "required field is missing"
+        elif "input" in e and not isinstance(e["input"], dict | list | tuple):
+            found.setdefault(loc, repr(e["input"]))
         msg = msg.removeprefix("Value error, ")
-        lines.append(f"  {loc or '(top level)'}: {msg}")
+        msgs = by_field.setdefault(loc, [])
+        if msg not in msgs:
+            msgs.append(msg)
     head = f"{source}: invalid campaign configuration"
-    return head + "\n" + "\n".join(lines)
+    lines = []
+    for loc, msgs in by_field.items():
+        text = "; or ".join(msgs)
+        if loc in found and found[loc] not in text:
+            text += f" (found {found[loc]})"
+        lines.append(f"{loc}: {text}")
+    if len(lines) == 1:
+        return f"{head}: {lines[0]}"
+    return head + "\n" + "\n".join(f"  {line}" for line in lines)
 
 
 def parse_campaign(data: Any, source: str = "campaign config") -> Campaign:
@@ -536,17 +659,65 @@ def parse_campaign(data: Any, source: str = "campaign config") -> Campaign:
         raise ConfigError(format_validation_error(err, source)) from None
 
 
+class DuplicateKeyError(yaml.YAMLError):
+    """A mapping of a YAML file gives the same key twice."""
+
+
+class UniqueKeyLoader(yaml.SafeLoader):
+    """PyYAML's safe loader, refusing a key given twice in one mapping (YAML requires unique
+    keys; PyYAML would keep the last one silently). Keys brought in by a merge key (``<<``) may
+    be overridden, as YAML intends."""
+
+    def construct_mapping(self, node, deep=False):  # type: ignore[override]
+        if isinstance(node, yaml.MappingNode):
+            seen: dict[Any, int] = {}
+            for key_node, _ in node.value:
+                if key_node.tag == "tag:yaml.org,2002:merge" or not isinstance(
+                    key_node, yaml.ScalarNode
+                ):
+                    continue
+                key = self.construct_object(key_node, deep=True)
+                line = key_node.start_mark.line + 1
+                if key in seen:
+                    raise DuplicateKeyError(
+                        f"line {line}: key {key!r} given twice in one mapping (first on line "
+                        f"{seen[key]}); give each key once"
+                    )
+                seen[key] = line
+        return super().construct_mapping(node, deep=deep)
+
+
+def read_yaml(path: str | Path, what: str) -> Any:
+    """The data of a YAML (or JSON) file: UTF-8 text, each key once per mapping.
+
+    Raises :class:`ConfigError` naming the file (and the line) for an unreadable file, bytes
+    that are not UTF-8, invalid YAML or a duplicate key; ``what`` says what the file should be.
+    """
+    path = Path(path)
+    try:
+        raw = path.read_bytes()
+    except OSError as err:
+        raise ConfigError(f"{path}: cannot read {what} ({err.strerror or err})") from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as err:
+        line = raw.count(b"\n", 0, err.start) + 1
+        raise ConfigError(
+            f"{path}: line {line}: byte 0x{raw[err.start]:02x} is not UTF-8 text; expected "
+            f"{what} as UTF-8 text"
+        ) from None
+    try:
+        return yaml.load(text, Loader=UniqueKeyLoader)  # noqa: S506 - a SafeLoader subclass
+    except DuplicateKeyError as err:
+        raise ConfigError(f"{path}: {err}") from None
+    except yaml.YAMLError as err:
+        raise ConfigError(f"{path}: not valid YAML ({err})") from None
+
+
 def load_campaign(path: str | Path) -> Campaign:
     """Read and validate a campaign YAML (or JSON) file."""
     path = Path(path)
-    try:
-        text = path.read_text()
-    except OSError as err:
-        raise ConfigError(f"{path}: cannot read campaign config ({err.strerror})") from None
-    try:
-        data = yaml.safe_load(text)
-    except yaml.YAMLError as err:
-        raise ConfigError(f"{path}: not valid YAML ({err})") from None
+    data = read_yaml(path, "a campaign config")
     from ionwell.engine_definitions import resolve_engines
 
     return parse_campaign(resolve_engines(data, path.resolve().parent), str(path))
@@ -564,6 +735,51 @@ def config_diff(old: Campaign, new: Campaign) -> str:
     return "".join(difflib.unified_diff(a, b, "frozen campaign.yaml", "new config"))
 
 
+#: An engine given by the name of its definition plus overrides (``engine: {definition:
+#: quantum-espresso, settings: {...}}``), merged by ``engine_definitions.resolve_engines``
+#: before the models see it; the overrides are checked then, against the merged engine.
+_DEFINITION_REF = {
+    "type": "object",
+    "title": "EngineDefinitionRef",
+    "description": "an engine definition by name (config/engines/ or engines/ beside the "
+    "config), with overrides of any of its keys",
+    "required": ["definition"],
+    "properties": {"definition": {"type": "string", "minLength": 1}},
+}
+
+
+def _allow_definitions(node: Any) -> Any:
+    """``node`` with every engine union (a discriminator mapping 'command') also accepting an
+    engine definition reference, as the config file may hold one."""
+    if isinstance(node, list):
+        return [_allow_definitions(x) for x in node]
+    if not isinstance(node, dict):
+        return node
+    out = {k: _allow_definitions(v) for k, v in node.items()}
+    mapping = out.get("discriminator", {}).get("mapping", {}) if "oneOf" in out else {}
+    if "command" in mapping:
+        union = {k: v for k, v in out.items() if k not in ("default", "title", "description")}
+        rest = {k: v for k, v in out.items() if k in ("default", "title", "description")}
+        return {**rest, "anyOf": [union, {"$ref": "#/$defs/EngineDefinitionRef"}]}
+    return out
+
+
+def stop_rule_note(campaign: Campaign) -> str | None:
+    """A word for a stop rule whose step cap ends the campaign before its guest target (allowed:
+    a trial run, extended later by amending ``stop.max_steps``), else None."""
+    stop, per_step = campaign.stop, campaign.placement.per_step
+    if stop.guests is None or stop.max_steps * per_step >= stop.guests:
+        return None
+    return (
+        f"stop.max_steps ({stop.max_steps}) ends the campaign before stop.guests "
+        f"({stop.guests}) is reached: at most {stop.max_steps * per_step} guests at "
+        f"placement.per_step {per_step}; amend stop.max_steps later to go on"
+    )
+
+
 def campaign_schema() -> str:
-    """JSON Schema of the campaign configuration."""
-    return json.dumps(Campaign.model_json_schema(), indent=2, sort_keys=True)
+    """JSON Schema of the campaign configuration (as written in a file: an engine may be given
+    by its definition's name)."""
+    schema = _allow_definitions(Campaign.model_json_schema())
+    schema.setdefault("$defs", {})["EngineDefinitionRef"] = _DEFINITION_REF
+    return json.dumps(schema, indent=2, sort_keys=True)

@@ -107,7 +107,13 @@ def check_engine(
             report.message = f"{program} is not installed here (not on PATH); nothing was run"
             return report
     folder = Path(keep) if keep else Path(tempfile.mkdtemp(prefix="ionwell-check-"))
-    folder.mkdir(parents=True, exist_ok=True)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise IonwellError(
+            f"--keep {keep}: cannot create the folder ({err.strerror or err}); expected a "
+            "folder that exists or can be made"
+        ) from None
     t0 = time.monotonic()
     try:
         done = run_engine(campaign, probe(), folder, ComputeContext(step=0, charge=0))

@@ -22,6 +22,10 @@ placeholders (Python's :class:`string.Template`; ``$$`` is a literal dollar sign
 ``structure`` (one ``Symbol x y z`` line per atom, Å, in the program's frame: inside the box
 when the cell rule made one), ``cell`` (three lines of lattice vectors, Å, the box's or the
 structure's own), ``box`` (``Lx Ly Lz``, Å: the cell's lengths, the same box as ``cell``),
+``cell_a``, ``cell_b``, ``cell_c`` (each lattice vector as ``x y z``, Å, for templates that
+give a skewed cell vector by vector), ``kpoint_mesh`` (``n1 n2 n3``: the k-point mesh for
+the setting ``kpoint_spacing``, Å⁻¹ without 2π as ASE's ``kspacing``; ``1 1 1`` for a boxed
+structure, along non-periodic axes, or when the definition has no such setting),
 ``boxed`` (``true`` when the cell rule made a box, else ``false``), ``natoms``, ``charge``,
 ``spin`` (2S), ``multiplicity`` (2S+1), ``unrestricted`` (``true`` when 2S > 0, else
 ``false``), ``step``, ``tasks``, ``threads``, ``input`` (the input file name), ``restart``
@@ -34,9 +38,17 @@ with ``ase.units``), potentials in the unit named for the map (converted to volt
 
 from __future__ import annotations
 
+import math
 from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    ConfigDict,
+    Field,
+    field_validator,
+    model_validator,
+)
 
 __all__ = [
     "AseEngineConfig",
@@ -51,6 +63,7 @@ __all__ = [
     "PotentialSpec",
     "PyscfEngineConfig",
     "RestartSpec",
+    "SoftStopSpec",
     "BoxSpec",
     "CellSpec",
     "CellChoice",
@@ -58,14 +71,45 @@ __all__ = [
     "TbliteEngineConfig",
     "ValueSpec",
     "ChargesSpec",
+    "CountSpec",
     "StructureSpec",
     "ENERGY_UNITS",
     "POTENTIAL_UNITS",
+    "MAP_BYTES_PER_POINT",
 ]
 
 
 class _Model(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    # finite numbers only (as in ionwell.config): NaN and infinities are refused at load time
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
+
+
+def _inside_engine_folder(path: str) -> str:
+    """A file name or glob relative to the step's engine folder that stays inside it: not
+    absolute, no ``~``, and no ``..`` leading above the folder (checked on the text, at load)."""
+    import posixpath
+
+    if not path.strip() or posixpath.normpath(path) == ".":
+        raise ValueError(
+            f"{path!r} names no file; expected a file name (or glob) inside the step's engine "
+            "folder, e.g. 'pw.out'"
+        )
+    if path.startswith(("/", "~")):
+        what = "an absolute path" if path.startswith("/") else "a path in a home folder"
+        raise ValueError(
+            f"{path!r} is {what}; expected a path relative to the step's engine folder, e.g. "
+            "'pw.out' (ionwell reads and writes engine files only there)"
+        )
+    if posixpath.normpath(path).split("/")[0] == "..":
+        raise ValueError(
+            f"{path!r} leads out of the step's engine folder ('..' above it); expected a path "
+            "inside the folder, e.g. 'pw.out' or 'out/pw.out'"
+        )
+    return path
+
+
+#: A file name or glob inside the step's engine folder (see :func:`_inside_engine_folder`).
+EnginePath = Annotated[str, AfterValidator(_inside_engine_folder)]
 
 
 #: Energy units a pattern may name, and their size in eV (ase.units).
@@ -91,11 +135,63 @@ ENERGY_UNITS = _energy_units()
 POTENTIAL_UNITS = {"V": 1.0, "hartree": ENERGY_UNITS["hartree"], "rydberg": ENERGY_UNITS["rydberg"]}
 
 
+#: Working memory of a potential map per grid point, bytes: the point coordinates and the
+#: map's float64 parts while the engine evaluates it (measured: 72 B per point for the pyscf
+#: engine's map, 48 for tblite's), plus the placement's masks and filters on the same grid.
+MAP_BYTES_PER_POINT = 96
+
+
 class PotentialGridConfig(_Model):
-    """Grid on which an in-process engine evaluates the electrostatic potential."""
+    """Grid on which an in-process engine evaluates the electrostatic potential.
+
+    The grid is the atoms' bounding box plus ``margin`` on every side at ``spacing``; its
+    working memory is estimated (:data:`MAP_BYTES_PER_POINT` per point) and refused above
+    ``max_memory`` before anything is computed: here for the smallest possible box (one atom),
+    and against the host's own extent before a campaign is frozen."""
 
     spacing: float = Field(0.25, gt=0.02, le=2.0, description="grid spacing, Å")
     margin: float = Field(4.0, ge=0.0, le=20.0, description="box margin around the atoms, Å")
+    max_memory: float = Field(
+        8.0,
+        gt=0.0,
+        le=100000.0,
+        description="ceiling of the potential map's estimated working memory, GiB (a grid "
+        "needing more is refused before the campaign starts)",
+    )
+
+    def shape(self, extent: tuple[float, float, float]) -> tuple[int, int, int]:
+        """Grid points per axis around atoms spanning ``extent`` (Å), as the engines build it."""
+        n = [math.ceil((e + 2 * self.margin) / self.spacing - 1e-9) + 1 for e in extent]
+        return (n[0], n[1], n[2])
+
+    def memory_gib(self, extent: tuple[float, float, float]) -> float:
+        """Estimated working memory of the map around atoms spanning ``extent`` (Å), GiB."""
+        return math.prod(self.shape(extent)) * MAP_BYTES_PER_POINT / 2**30
+
+    def memory_problem(self, extent: tuple[float, float, float], what: str) -> str | None:
+        """Why a grid around ``what`` (spanning ``extent`` Å) is refused, or None when it fits."""
+        need = self.memory_gib(extent)
+        if need <= self.max_memory:
+            return None
+        fits = self.spacing
+        while fits < 2.0 and self.model_copy(update={"spacing": fits}).memory_gib(extent) > (
+            self.max_memory
+        ):
+            fits *= 1.05
+        shape = "×".join(str(n) for n in self.shape(extent))
+        hint = f"a spacing of {fits:.3f} Å would fit, " if fits < 2.0 else ""
+        return (
+            f"spacing {self.spacing:g} Å and margin {self.margin:g} Å around {what} make a grid "
+            f"of {shape} points, about {need:,.1f} GiB of working memory, over max_memory "
+            f"{self.max_memory:g} GiB; {hint}or raise max_memory if the machine has it"
+        )
+
+    @model_validator(mode="after")
+    def _fits(self) -> PotentialGridConfig:
+        problem = self.memory_problem((0.0, 0.0, 0.0), "a single atom")
+        if problem:
+            raise ValueError(problem)
+        return self
 
 
 class PyscfEngineConfig(_Model):
@@ -147,7 +243,7 @@ class TbliteEngineConfig(_Model):
 class InputSpec(_Model):
     """How the external program's input file is written: an ASE writer, or a template."""
 
-    file: str = Field("input", description="input file name in the engine folder")
+    file: EnginePath = Field("input", description="input file name in the engine folder")
     format: str | None = Field(None, description="ASE writer format name, e.g. 'nwchem-in'")
     parameters: dict[str, Any] = Field(
         default_factory=dict,
@@ -173,26 +269,31 @@ class InputSpec(_Model):
 class ValueSpec(_Model):
     """A number read from an output file: an ASE reader, or a regex with one group."""
 
-    file: str = Field(description="file (glob) in the engine folder")
+    file: EnginePath = Field(description="file (glob) in the engine folder")
     regex: str | None = Field(None, description="pattern with one group; the last match counts")
     reader: str | None = Field(None, description="ASE reader format name (energy from its calc)")
     unit: EnergyUnit = "eV"
+
+    _re = field_validator("regex")(
+        classmethod(lambda cls, v: v if v is None else _check_regex(v, groups=1))
+    )
 
     @model_validator(mode="after")
     def _one_way(self) -> ValueSpec:
         if (self.regex is None) == (self.reader is None):
             raise ValueError("give exactly one of 'regex' or 'reader'")
-        if self.regex is not None:
-            _check_regex(self.regex, groups=1)
         return self
 
 
 class ChargesSpec(_Model):
-    """Atomic charges: the last block of ``natoms`` matches of ``regex`` (group 1: charge, e)."""
+    """Atomic charges: the last block of ``natoms`` matches of ``regex`` (group 1: charge, e).
 
-    file: str
+    ``outputs.charges`` takes one of these or a list (one per scheme the program prints): the
+    first is the step's ``charges``, all of them go into ``charge_sets`` by scheme name."""
+
+    file: EnginePath
     regex: str
-    scheme: str = Field(description="the charge scheme's name, e.g. 'mulliken'")
+    scheme: str = Field(min_length=1, description="the charge scheme's name, e.g. 'mulliken'")
 
     _re = field_validator("regex")(classmethod(lambda cls, v: _check_regex(v, groups=1)))
 
@@ -200,14 +301,14 @@ class ChargesSpec(_Model):
 class StructureSpec(_Model):
     """The relaxed structure written by the program, read with ASE (last frame)."""
 
-    file: str
+    file: EnginePath
     format: str | None = Field(None, description="ASE format name (default: guessed)")
 
 
 class PotentialSpec(_Model):
     """The potential map the program writes."""
 
-    file: str = Field(description="file (glob) in the engine folder")
+    file: EnginePath = Field(description="file (glob) in the engine folder")
     format: Literal["auto", "cube", "npy", "npz", "xsf", "ase"] = Field(
         "auto", description="auto: by suffix; npy/npz need a JSON sidecar with the grid"
     )
@@ -228,8 +329,18 @@ class VersionSpec(_Model):
     ``file``. Recorded as the step's ``code_version``; when the file or the line is missing the
     static ``version`` is recorded instead, with a note."""
 
-    file: str = Field(description="file (glob) in the engine folder, e.g. the program's log")
+    file: EnginePath = Field(description="file (glob) in the engine folder, e.g. the program's log")
     regex: str = Field(description="pattern with one group; the last match counts (a string)")
+
+    _re = field_validator("regex")(classmethod(lambda cls, v: _check_regex(v, groups=1)))
+
+
+class CountSpec(_Model):
+    """A count the program prints (e.g. its SCF iterations): the last match of ``regex`` (one
+    group, an integer) in ``file``."""
+
+    file: EnginePath = Field(description="file (glob) in the engine folder, e.g. the program's log")
+    regex: str = Field(description="pattern with one group (an integer); the last match counts")
 
     _re = field_validator("regex")(classmethod(lambda cls, v: _check_regex(v, groups=1)))
 
@@ -242,7 +353,14 @@ class OutputSpec(_Model):
         None, description="file an ASE reader gets forces (eV/Å) from; optional"
     )
     potential: PotentialSpec
-    charges: ChargesSpec | None = None
+    charges: ChargesSpec | list[ChargesSpec] | None = Field(
+        None, description="atomic charges: one scheme, or a list (the first is the main one)"
+    )
+    scf_iterations: CountSpec | None = Field(
+        None,
+        description="SCF iteration count: the last match of a pattern with one group (an "
+        "integer) in an output file",
+    )
     fermi_level: ValueSpec | None = None
     homo: ValueSpec | None = None
     lumo: ValueSpec | None = None
@@ -251,11 +369,29 @@ class OutputSpec(_Model):
         None, description="the version line the program prints (default: the static 'version')"
     )
 
+    @field_validator("charges")
+    @classmethod
+    def _schemes(cls, v: ChargesSpec | list[ChargesSpec] | None):
+        if isinstance(v, list):
+            if not v:
+                raise ValueError("an empty list: give at least one charge scheme, or leave it out")
+            names = [c.scheme for c in v]
+            if len(set(names)) != len(names):
+                raise ValueError(f"each charge scheme once, got {names}")
+        return v
+
+    @property
+    def charge_specs(self) -> list[ChargesSpec]:
+        """The charge schemes read, the main one first (empty when none)."""
+        if self.charges is None:
+            return []
+        return self.charges if isinstance(self.charges, list) else [self.charges]
+
 
 class ConvergencePattern(_Model):
     """A pattern whose presence proves convergence."""
 
-    file: str
+    file: EnginePath
     regex: str
 
     _re = field_validator("regex")(classmethod(lambda cls, v: _check_regex(v, groups=None)))
@@ -281,12 +417,13 @@ class RestartSpec(_Model):
     one (restart files of another atom count are ignored by the codes, which start cold); else
     the start is cold, ``${restart}`` is ``fresh`` and the step's notes say why. A step records
     ``warm_started`` only when restart files were in place and, if ``used`` is given, the
-    program's output proves it read them."""
+    program's output proves it read them, and, if ``not_used`` is given, its output does not
+    show that it started over from its own guess."""
 
-    keep: list[str] = Field(
+    keep: list[EnginePath] = Field(
         default_factory=list, description="globs kept from an earlier, killed attempt of the step"
     )
-    previous: list[str] = Field(
+    previous: list[EnginePath] = Field(
         default_factory=list, description="globs copied from the previous step's engine folder"
     )
     value: str = Field("restart", description="what ${restart} becomes when restarting")
@@ -296,6 +433,34 @@ class RestartSpec(_Model):
         description="pattern in an output proving the program read the restart files "
         "(default: files in place count as used)",
     )
+    not_used: ConvergencePattern | None = Field(
+        None,
+        description="pattern in an output showing the program did not use the restart files "
+        "(e.g. it fell back to its own initial guess)",
+    )
+
+
+class SoftStopSpec(_Model):
+    """The program's own documented way to stop cleanly, writing its restart files: files whose
+    appearance in its working folder makes it stop (Quantum ESPRESSO ``<prefix>.EXIT``, CP2K
+    ``EXIT``). ionwell creates them when the job is warned that its time limit is near
+    (``resources.compute.stop_before``, :mod:`ionwell.engines.soft_stop`); the attempt then
+    counts as not finished and the retry continues from ``restart.keep``."""
+
+    files: list[str] = Field(
+        min_length=1,
+        description="file names created in the program's working folder to make it stop cleanly",
+    )
+
+    @field_validator("files")
+    @classmethod
+    def _plain_names(cls, v: list[str]) -> list[str]:
+        for name in v:
+            if not name or name.startswith("/") or ".." in name.split("/"):
+                raise ValueError(
+                    f"{name!r}: give a file name relative to the program's working folder"
+                )
+        return v
 
 
 class BoxSpec(_Model):
@@ -316,7 +481,7 @@ class CellChoice(_Model):
 #: Placeholders the command engine fills itself; ``cell.placeholders`` may not reuse them.
 BUILTIN_PLACEHOLDERS = frozenset(
     {
-        "structure", "cell", "box", "boxed", "natoms", "charge", "spin", "multiplicity",
+        "structure", "cell", "cell_a", "cell_b", "cell_c", "kpoint_mesh", "box", "boxed", "natoms", "charge", "spin", "multiplicity",
         "unrestricted", "step", "tasks", "threads", "input", "restart",
     }
 )  # fmt: skip
@@ -328,7 +493,8 @@ class CellSpec(_Model):
     ``placeholders`` lets a definition say how its program treats the two cases, e.g. QE's
     ``assume_isolated`` (``{box: mt, periodic: none}``) or CP2K's ``PERIODIC``
     (``{box: NONE, periodic: XYZ}``); a writer parameter that is exactly ``"${name}"`` keeps the
-    value's type (numbers, lists, null).
+    value's type (numbers, lists, null). A value may name one of the definition's ``settings``,
+    e.g. QE's k-points ``kspacing: {box: null, periodic: "${kpoint_spacing}"}`` (Å⁻¹).
     """
 
     box: BoxSpec = BoxSpec()
@@ -408,14 +574,21 @@ class CommandEngineConfig(_Model):
         default_factory=list,
         description="commands run after argv, in order (e.g. a post-processor writing the map)",
     )
-    extra_inputs: dict[str, str] = Field(
+    extra_inputs: dict[EnginePath, str] = Field(
         default_factory=dict,
         description="more input files: name -> text with ${placeholders} (e.g. for 'then')",
     )
-    stdout: str | None = Field("stdout.log", description="file receiving the program's output")
+    stdout: EnginePath | None = Field(
+        "stdout.log", description="file receiving the program's output"
+    )
     outputs: OutputSpec
     converged: ConvergenceSpec
     restart: RestartSpec = RestartSpec()
+    soft_stop: SoftStopSpec | None = Field(
+        None,
+        description="files that make the program stop cleanly with its restart files written, "
+        "created when the job is warned of its time limit (None: it runs until killed)",
+    )
     cell: CellSpec = CellSpec()
     relaxes: bool = Field(
         False, description="the program relaxes the structure itself (outputs.structure)"

@@ -25,8 +25,6 @@ import os
 from pathlib import Path
 from typing import Any
 
-import yaml
-
 from ionwell.errors import ConfigError
 
 __all__ = ["definition_dirs", "find_definition", "list_definitions", "resolve_engines"]
@@ -108,6 +106,11 @@ def _read_template(engine: dict, base: Path, field: str) -> dict:
             f"{field}.input.template: cannot read {f} ({err.strerror or err}); expected a "
             "template file, relative to the file that names it"
         ) from None
+    except UnicodeDecodeError as err:
+        raise ConfigError(
+            f"{field}.input.template: {f} is not UTF-8 text (byte {err.start}: "
+            f"0x{err.object[err.start]:02x}); expected a text template"
+        ) from None
     return {**engine, "input": {**inp, "template_text": text}}
 
 
@@ -130,10 +133,9 @@ def _resolve_one(engine: Any, config_dir: Path, field: str) -> Any:
                 )
                 return _read_template({**engine, "definition_merged": True}, config_dir, field)
             raise
-        try:
-            data = yaml.safe_load(path.read_text())
-        except (OSError, yaml.YAMLError) as err:
-            raise ConfigError(f"{path}: not a readable YAML engine definition ({err})") from None
+        from ionwell.config import read_yaml
+
+        data = read_yaml(path, "a YAML engine definition")
         if not isinstance(data, dict):
             raise ConfigError(f"{path}: expected a mapping of engine settings")
         data = _read_template(data, path.parent, f"{path}:")

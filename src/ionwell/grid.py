@@ -24,6 +24,7 @@ from ionwell.errors import GridError
 
 __all__ = [
     "Grid",
+    "check_array_file",
     "detect_sign",
     "fractional_index",
     "grid_digest",
@@ -153,88 +154,17 @@ def sphere_mask(
     radius: float,
     *,
     strict: bool = False,
-    max_rows: int = 1 << 21,
 ) -> np.ndarray:
     """Boolean array of ``grid.shape``: True at points within ``radius`` (Å) of any centre.
 
     ``distance < radius`` when ``strict``, else ``<=``. On periodic axes every periodic image of
     a centre counts (minimum image, skewed cells included); elsewhere the grid simply ends.
-
-    Method: for a fixed first and second index the grid points form a line, and the part of a
-    line inside a sphere is one run of consecutive third indices, found from a quadratic. Each
-    run is recorded as +1 at its start and -1 after its end; a cumulative sum along the third
-    axis then counts the spheres covering each point. The cost grows with centres × lines per
-    sphere (not with the number of points per sphere).
+    The cost is bounded by the grid, not by the radius: :func:`ionwell.science.spheres.union_mask`
+    runs along grid lines for small spheres and by blocks and a k-d tree for large ones.
     """
-    shape = grid.shape
-    n0, n1, n2 = shape
-    centers = np.asarray(centers, dtype=float).reshape(-1, 3)
-    if len(centers) == 0 or radius <= 0:
-        return np.zeros(shape, dtype=bool)
-    axes = np.asarray(grid.axes, dtype=float)
-    frac = fractional_index(grid, centers)
-    half = radius * np.linalg.norm(np.linalg.inv(axes), axis=0)  # index extent of a sphere
-    i_lo = np.ceil(frac[:, 0] - half[0]).astype(np.int64)
-    j_lo = np.ceil(frac[:, 1] - half[1]).astype(np.int64)
-    di = np.arange(int(np.floor(2 * half[0])) + 2)
-    dj = np.arange(int(np.floor(2 * half[1])) + 2)
-    a2 = axes[2]
-    aa = float(a2 @ a2)
-    r2 = radius * radius
-    row_len = n2 + 1
-    per = max(1, max_rows // (len(di) * len(dj)))
-    marks: list[np.ndarray] = []
-    signs: list[np.ndarray] = []
-    for s in range(0, len(centers), per):
-        sl = slice(s, s + per)
-        i = (i_lo[sl, None, None] + di[None, :, None]) + 0 * dj[None, None, :]
-        j = (j_lo[sl, None, None] + dj[None, None, :]) + 0 * di[None, :, None]
-        # line through (i, j, 0): c + k * a2, relative to the centre
-        c = (
-            grid.origin
-            + i[..., None] * axes[0]
-            + j[..., None] * axes[1]
-            - centers[sl, None, None, :]
-        )
-        ca = c @ a2
-        disc = ca * ca - aa * (np.einsum("...x,...x->...", c, c) - r2)
-        ok = disc > 0 if strict else disc >= 0
-        root = np.sqrt(np.where(ok, disc, 0.0))
-        k1, k2 = (-ca - root) / aa, (-ca + root) / aa
-        if strict:
-            klo, khi = np.floor(k1) + 1, np.ceil(k2) - 1
-        else:
-            klo, khi = np.ceil(k1), np.floor(k2)
-        ok &= klo <= khi
-        for ax, idx in ((0, i), (1, j)):
-            if grid.pbc[ax]:
-                idx %= shape[ax]
-            else:
-                ok &= (idx >= 0) & (idx < shape[ax])
-        i, j, klo, khi = i[ok], j[ok], klo[ok].astype(np.int64), khi[ok].astype(np.int64)
-        if grid.pbc[2]:
-            length = np.minimum(khi - klo + 1, n2)
-            klo %= n2
-            khi = klo + length - 1
-            wraps = khi >= n2
-            # a run past the end continues at the start of the same line
-            i = np.concatenate([i, i[wraps]])
-            j = np.concatenate([j, j[wraps]])
-            klo = np.concatenate([klo, np.zeros(int(wraps.sum()), np.int64)])
-            khi = np.concatenate([np.minimum(khi, n2 - 1), khi[wraps] - n2])
-        else:
-            klo, khi = np.maximum(klo, 0), np.minimum(khi, n2 - 1)
-            keep = klo <= khi
-            i, j, klo, khi = i[keep], j[keep], klo[keep], khi[keep]
-        base = (i * n1 + j) * row_len
-        marks += [base + klo, base + khi + 1]
-        signs += [np.ones(len(base), np.int32), -np.ones(len(base), np.int32)]
-    if not marks:
-        return np.zeros(shape, dtype=bool)
-    runs = np.zeros(n0 * n1 * row_len, dtype=np.int32)
-    np.add.at(runs, np.concatenate(marks), np.concatenate(signs))
-    cover = np.cumsum(runs.reshape(n0, n1, row_len), axis=2, dtype=np.int32)
-    return cover[:, :, :n2] > 0
+    from ionwell.science.spheres import union_mask
+
+    return union_mask(grid, centers, radius, strict=strict)
 
 
 def interpolate(grid: Grid, positions: np.ndarray) -> np.ndarray:
@@ -452,6 +382,10 @@ def _parse_numbers(path: Path, raw: bytes, start: int, expected: int) -> tuple[n
     return out, done
 
 
+#: Fewest bytes of an atom line of a cube ("Z charge x y z" and a line end).
+_MIN_ATOM_LINE = 10
+
+
 class _Header:
     """Line-by-line reader of a cube header with error messages naming file and line."""
 
@@ -538,6 +472,14 @@ def read_cube(path: str | Path) -> tuple[Grid, Atoms]:
     axes = np.array(vectors)
     if abs(np.linalg.det(axes)) < 1e-12:
         raise GridError(f"{path}: the three axis vectors are linearly dependent (a flat grid)")
+    # sizes from the header are checked against the file before anything is allocated from them
+    rest = len(raw) - h.pos
+    if abs(natoms) > rest // _MIN_ATOM_LINE + 1:
+        raise GridError(
+            f"{path}: line 3 declares {abs(natoms)} atoms, but the file is {len(raw)} bytes, "
+            f"with {rest} after the axis lines (each atom needs a line of five numbers); "
+            "expected an atom count that matches the file (a wrong count, or a truncated file)"
+        )
     numbers = np.empty(abs(natoms), dtype=int)
     positions = np.empty((abs(natoms), 3))
     for i in range(abs(natoms)):
@@ -567,6 +509,14 @@ def read_cube(path: str | Path) -> tuple[Grid, Atoms]:
             "fields); ionwell expects one potential value per point"
         )
     expected = counts[0] * counts[1] * counts[2]
+    room = (len(raw) - h.pos + 1) // 2  # each value is a digit and a separator at least
+    if expected > room:
+        raise GridError(
+            f"{path}: the header declares {counts[0]}×{counts[1]}×{counts[2]} = {expected} "
+            f"values, but the file is {len(raw)} bytes, with room for at most {room} numbers "
+            "after the header; expected point counts (lines 4-6) that match the file (wrong "
+            "counts, or a truncated file)"
+        )
     values, found = _parse_numbers(path, raw, h.pos, expected)
     if found != expected:
         hint = "the file looks truncated" if found < expected else "more values than it holds"
@@ -644,9 +594,87 @@ def save_npz(path: str | Path, grid: Grid) -> None:
         raise GridError(f"{path}: cannot write the grid file ({err.strerror or err})") from None
 
 
+#: Most bytes deflate can unpack from one packed byte (its limit is about 1032:1), with slack.
+_DEFLATE_RATIO = 1100
+
+
+def _npy_data_size(f) -> tuple[int, int]:
+    """Bytes of array data an ``.npy`` header (read from ``f``) declares, and the header's
+    length. Raises ValueError on a malformed header."""
+    from numpy.lib import format as npy_format
+
+    version = npy_format.read_magic(f)
+    if version == (1, 0):
+        shape, _, dtype = npy_format.read_array_header_1_0(f)
+    elif version == (2, 0):
+        shape, _, dtype = npy_format.read_array_header_2_0(f)
+    else:  # (3, 0): the 2.0 layout with a UTF-8 header
+        shape, _, dtype = npy_format._read_array_header(f, version)
+    return math.prod(shape) * dtype.itemsize, f.tell()
+
+
+def check_array_file(path: str | Path) -> None:
+    """Check a NumPy ``.npy`` file or ``.npz`` archive before numpy allocates from its headers.
+
+    Each array header declares a shape and dtype; numpy allocates that much before reading.
+    Raises :class:`GridError` naming the file (and member) when a header declares more data
+    than the file (or the archive member) holds. A malformed header is left to ``np.load``.
+    """
+    import zipfile
+
+    path = Path(path)
+    try:
+        with path.open("rb") as f:
+            magic = f.read(6)
+            f.seek(0)
+            if magic == b"\x93NUMPY":
+                size = path.stat().st_size
+                try:
+                    need, head = _npy_data_size(f)
+                except ValueError:
+                    return
+                if need > size - head:
+                    raise GridError(
+                        f"{path}: the array header declares {need} bytes of data, but the file "
+                        f"is {size} bytes; expected a complete .npy array (truncated, or a "
+                        "wrong shape in its header)"
+                    )
+                return
+        if not zipfile.is_zipfile(path):
+            return
+        with zipfile.ZipFile(path) as z:
+            for info in z.infolist():
+                if not info.filename.endswith(".npy"):
+                    continue
+                packed = info.compress_size
+                limit = {zipfile.ZIP_STORED: packed, zipfile.ZIP_DEFLATED: packed * _DEFLATE_RATIO}
+                if info.file_size > limit.get(info.compress_type, info.file_size):
+                    raise GridError(
+                        f"{path}: archive member {info.filename} claims {info.file_size} bytes "
+                        f"unpacked from {packed} packed bytes, more than its compression can "
+                        "give; expected an intact .npz archive (corrupt directory?)"
+                    )
+                with z.open(info) as member:
+                    try:
+                        need, head = _npy_data_size(member)
+                    except ValueError:
+                        continue
+                if need > info.file_size - head:
+                    raise GridError(
+                        f"{path}: archive member {info.filename}: the array header declares "
+                        f"{need} bytes of data, but the member holds {info.file_size} bytes; "
+                        "expected a complete array (truncated, or a wrong shape in its header)"
+                    )
+    except OSError as err:
+        raise GridError(f"{path}: cannot read the array file ({err.strerror or err})") from None
+    except (zipfile.BadZipFile, EOFError):
+        return  # a broken archive: np.load names it
+
+
 def load_npz(path: str | Path) -> Grid:
     """Read a grid written by :func:`save_npz`; values stay float32."""
     path = Path(path)
+    check_array_file(path)
     try:
         with np.load(path, allow_pickle=False) as z:
             data = {k: z[k] for k in z.files}

@@ -20,6 +20,15 @@ outward bisector of its C–C bonds (in the sheet plane). Sheets are stacked alo
 vector ``(0, cc)``, which puts one carbon sublattice over carbons of the neighbouring sheet and
 the other over its hexagon centres; ``AA`` sheets are eclipsed. The whole stack is translated so
 that the mean atomic position is the origin. Atom tags hold the sheet index (0 = lowest).
+
+Periodic graphite (:func:`build_graphite`). The graphene primitive cell ``a1 = a·(1, 0, 0)``,
+``a2 = a·(-1/2, √3/2, 0)`` (120°, as in the usual hexagonal setting) holds carbons at fractional
+(0, 0) and (2/3, 1/3), one bond ``a/√3`` apart. The in-plane cell is ``n·a1, n·a2`` or the √3×√3
+R30° cell ``2·a1 + a2, a2 - a1`` (six carbons per sheet). Sheet ``i`` lies at height
+``(i + 1/2)·spacing`` in a cell ``layers·spacing`` high, so one gallery straddles the cell's
+bottom/top face; in AB stacking every second sheet is shifted by one bond vector
+``(2·a1 + a2)/3``, which puts one sublattice over carbons of the neighbouring sheet and the other
+over its hexagon centres (Bernal).
 """
 
 from __future__ import annotations
@@ -34,14 +43,16 @@ from ase import Atoms
 from pydantic import BaseModel, ConfigDict
 from scipy.spatial import cKDTree
 
-from ionwell.config import FlakeBuilder, HostConfig
+from ionwell.config import FlakeBuilder, GraphiteBuilder, HostConfig
 from ionwell.errors import StructureError
 
 __all__ = [
     "MIN_ATOM_DISTANCE",
     "Layers",
     "build_flake",
+    "build_graphite",
     "build_sheet",
+    "check_atoms",
     "detect_layers",
     "host_formula_units",
     "load_host",
@@ -159,12 +170,62 @@ def build_flake(builder: FlakeBuilder) -> Atoms:
     return atoms
 
 
+def build_graphite(builder: GraphiteBuilder) -> Atoms:
+    """Periodic graphite: ``builder.layers`` sheets in a hexagonal cell periodic along a, b, c.
+
+    Lengths in Å. Atoms are ordered sheet by sheet; tags hold the sheet index (0 = lowest);
+    ``info['host_builder']`` holds the builder parameters. See the module docstring for the
+    cell, the heights of the sheets and the AB shift.
+    """
+    a = builder.a
+    a1 = a * np.array([1.0, 0.0, 0.0])
+    a2 = a * np.array([-0.5, _SQRT3 / 2.0, 0.0])
+    basis = [np.zeros(3), (2.0 * a1 + a2) / 3.0]  # fractional (0, 0) and (2/3, 1/3)
+    if builder.cell == "sqrt3":
+        v1, v2 = 2.0 * a1 + a2, a2 - a1
+        # the primitive cells in the √3×√3 cell: lattice points i·a1 + j·a2 inside it
+        points = [np.zeros(3), a1, a1 + a2]
+    else:
+        n = int(builder.cell)
+        v1, v2 = n * a1, n * a2
+        points = [i * a1 + j * a2 for i in range(n) for j in range(n)]
+    sheet = np.array([p + b for p in points for b in basis])
+    height = builder.layers * builder.spacing
+    cell = np.array([v1, v2, [0.0, 0.0, height]])
+    bond = (2.0 * a1 + a2) / 3.0  # one C–C bond vector
+    parts, tags = [], []
+    for layer in range(builder.layers):
+        offset = np.array([0.0, 0.0, (layer + 0.5) * builder.spacing])
+        if builder.stacking == "AB" and layer % 2 == 1:
+            offset = offset + bond
+        parts.append(sheet + offset)
+        tags += [layer] * len(sheet)
+    atoms = Atoms(["C"] * len(tags), positions=np.vstack(parts), cell=cell, pbc=True, tags=tags)
+    atoms.wrap()
+    atoms.info["host_builder"] = builder.model_dump(mode="json")
+    return atoms
+
+
 # ---------------------------------------------------------------------------------------------
 # structure files
 
 
 def _closest_pair(atoms: Atoms, cutoff: float) -> tuple[int, int, float] | None:
-    """The closest pair of distinct atoms nearer than ``cutoff`` (minimum image), or None."""
+    """The closest pair of distinct atoms nearer than ``cutoff`` (minimum image), or None.
+
+    Without periodicity a k-d tree of the positions (SciPy); ASE's neighbour list bins the
+    bounding box by the cutoff, which for a short cutoff and thousands of atoms took a minute
+    and gigabytes. With periodicity ASE's neighbour list (minimum image, any cell)."""
+    if not atoms.pbc.any():
+        from scipy.spatial import cKDTree
+
+        pos = np.asarray(atoms.positions, dtype=float)
+        pairs = cKDTree(pos).query_pairs(cutoff, output_type="ndarray")
+        if len(pairs) == 0:
+            return None
+        d = np.linalg.norm(pos[pairs[:, 0]] - pos[pairs[:, 1]], axis=1)
+        k = int(np.argmin(d))
+        return int(pairs[k, 0]), int(pairs[k, 1]), float(d[k])
     from ase.neighborlist import neighbor_list
 
     i, j, d = neighbor_list("ijd", atoms, cutoff, self_interaction=False)
@@ -173,6 +234,39 @@ def _closest_pair(atoms: Atoms, cutoff: float) -> tuple[int, int, float] | None:
     k = int(np.argmin(d))
     a, b = sorted((int(i[k]), int(j[k])))
     return a, b, float(d[k])
+
+
+#: Fewest bytes of an atom line of an XYZ file ("C 0 0 0" and a line end).
+_MIN_XYZ_LINE = 8
+
+
+def _check_xyz_counts(path: Path) -> None:
+    """Refuse an XYZ frame declaring more atoms than the rest of the file can hold, before
+    ASE's reader skips that many lines one by one (a count of 10¹² would take hours)."""
+    try:
+        size = path.stat().st_size
+        with path.open("rb") as f:
+            frame = 0
+            while line := f.readline():
+                if not line.strip():
+                    continue
+                try:
+                    natoms = int(line)
+                except ValueError:
+                    return  # not a count line: ASE's reader names the problem
+                frame += 1
+                room = (size - f.tell()) // _MIN_XYZ_LINE + 1
+                if natoms > room:
+                    raise StructureError(
+                        f"{path}: frame {frame} declares {natoms} atoms, but the file is {size} "
+                        f"bytes, with room for at most {room} atom lines after that count; "
+                        "expected an atom count that matches the file (a wrong count, or a "
+                        "truncated file)"
+                    )
+                for _ in range(max(natoms, 0) + 1):  # the comment line and the atom lines
+                    f.readline()
+    except OSError as err:
+        raise StructureError(f"{path}: cannot read ({err.strerror or err})") from None
 
 
 def _parse_error(path: Path, format: str, err: Exception) -> StructureError:
@@ -225,6 +319,8 @@ def read_structure(path: str | Path, format: str | None = None) -> Atoms:
                 f"{path}: cannot tell the structure format from the name ({format!r} is not an "
                 "ASE format); give it with 'format', e.g. format: extxyz"
             )
+    if format in ("xyz", "extxyz"):
+        _check_xyz_counts(path)
     try:
         atoms = ase.io.read(path, index=-1, format=format)
     except OSError as err:
@@ -239,27 +335,37 @@ def read_structure(path: str | Path, format: str | None = None) -> Atoms:
         atoms = atoms[-1]
     if len(atoms) == 0:
         raise StructureError(f"{path}: holds a structure with no atoms (expected {what})")
+    check_atoms(atoms, path)
+    return atoms
+
+
+def check_atoms(atoms: Atoms, source: str | Path) -> None:
+    """The checks every structure read from a file passes (``source`` names it in messages):
+    finite positions, and no two atoms closer than :data:`MIN_ATOM_DISTANCE` (minimum image).
+
+    Raises:
+        StructureError: naming ``source``, the atoms and what was expected.
+    """
     bad = ~np.isfinite(atoms.positions).all(axis=1)
     if bad.any():
         idx = np.flatnonzero(bad)
         raise StructureError(
-            f"{path}: {len(idx)} atom(s) have non-finite positions (first: atom {idx[0]}); "
+            f"{source}: {len(idx)} atom(s) have non-finite positions (first: atom {idx[0]}); "
             "expected finite Cartesian coordinates in Å"
         )
     try:
         close = _closest_pair(atoms, MIN_ATOM_DISTANCE)
     except Exception as err:  # e.g. a periodic axis with a zero cell vector
         raise StructureError(
-            f"{path}: cannot measure interatomic distances ({err}); check the cell and pbc"
+            f"{source}: cannot measure interatomic distances ({err}); check the cell and pbc"
         ) from None
     if close is not None:
         a, b, d = close
         sa, sb = atoms[a].symbol, atoms[b].symbol
         raise StructureError(
-            f"{path}: atoms {a} ({sa}) and {b} ({sb}) are {d:.3f} Å apart; expected every "
+            f"{source}: atoms {a} ({sa}) and {b} ({sb}) are {d:.3f} Å apart; expected every "
             f"pair at least {MIN_ATOM_DISTANCE} Å apart (duplicated atom or wrong units?)"
         )
-    return atoms
 
 
 def load_host(host: HostConfig, base_dir: str | Path) -> Atoms:
@@ -267,6 +373,8 @@ def load_host(host: HostConfig, base_dir: str | Path) -> Atoms:
 
     A relative file path is resolved against ``base_dir`` (the folder of the config file).
     """
+    if isinstance(host.builder, GraphiteBuilder):
+        return build_graphite(host.builder)
     if host.builder is not None:
         return build_flake(host.builder)
     assert host.file is not None

@@ -6,11 +6,15 @@ this machine (:class:`~ionwell.config.LauncherConfig`). :func:`command_line` is 
 
 The program runs in the job's process group (a controller that ends the group ends it too) and
 receives SIGKILL if the step job itself dies (Linux ``PR_SET_PDEATHSIG``), so no orphaned
-program keeps computing a step another attempt is redoing.
+program keeps computing a step another attempt is redoing. It ignores the scheduler's warning
+signal before the time limit; when that signal has come, :func:`run_program` creates the
+program's soft-stop files instead, and raises :class:`SoftStopped` once the program has stopped
+(:mod:`ionwell.engines.soft_stop`).
 """
 
 from __future__ import annotations
 
+import contextlib
 import ctypes
 import logging
 import os
@@ -18,14 +22,23 @@ import shutil
 import signal
 import subprocess
 import time
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from string import Template
 
 from ionwell.engine_config import LauncherConfig
+from ionwell.engines import soft_stop
 from ionwell.errors import ConfigError, IonwellError
 
-__all__ = ["EngineRunError", "command_line", "die_with_parent", "fill", "run_program"]
+__all__ = [
+    "EngineRunError",
+    "ScfNotConverged",
+    "SoftStopped",
+    "command_line",
+    "die_with_parent",
+    "fill",
+    "run_program",
+]
 
 log = logging.getLogger("ionwell.launcher")
 
@@ -43,6 +56,12 @@ class ScfNotConverged(EngineRunError):
     remedies retry it at the same structure; it is not a failure of the machine."""
 
 
+class SoftStopped(EngineRunError):
+    """The program was asked to stop before the job's time limit (its soft-stop file) and has
+    stopped: the attempt is not finished, whatever its output says; its restart files are in
+    the engine folder, and the retry continues from them."""
+
+
 def die_with_parent() -> None:  # pragma: no cover - runs in the child before exec
     """Ask Linux to SIGKILL this (child) process when its parent dies."""
     try:
@@ -50,6 +69,19 @@ def die_with_parent() -> None:  # pragma: no cover - runs in the child before ex
         libc.prctl(1, signal.SIGKILL)  # PR_SET_PDEATHSIG
     except OSError:
         pass
+
+
+def _child_setup() -> None:  # pragma: no cover - runs in the child before exec
+    """The program's process before ``exec``: dies with its parent, and ignores the
+    scheduler's warning signal (the launcher stops it through its soft-stop files)."""
+    die_with_parent()
+    soft_stop.child_ignores_stop_signal()
+
+
+def _remove(rundir: Path, names: Sequence[str]) -> None:
+    for name in names:
+        with contextlib.suppress(FileNotFoundError):
+            (rundir / name).unlink()
 
 
 def fill(text: str, values: Mapping[str, object], where: str) -> str:
@@ -90,6 +122,39 @@ def _copy_back(src: Path, dst: Path) -> None:
             shutil.copy2(p, target)
 
 
+def _wait(
+    child: subprocess.Popen,
+    timeout: float | None,
+    soft_stop_files: Sequence[str],
+    rundir: Path,
+    program: str,
+    poll: float,
+) -> tuple[int, float | None]:
+    """Wait for ``child`` (``timeout`` s at most, then ``TimeoutExpired``); with
+    ``soft_stop_files``, create them once a stop request has come. Returns (exit status,
+    ``time.monotonic()`` when the files were created or None)."""
+    if not soft_stop_files:
+        return child.wait(timeout=timeout), None
+    deadline = None if timeout is None else time.monotonic() + timeout
+    sent: float | None = None
+    while True:
+        left = None if deadline is None else deadline - time.monotonic()
+        if left is not None and left <= 0:
+            raise subprocess.TimeoutExpired(child.args, timeout or 0.0)
+        try:
+            return child.wait(timeout=poll if left is None else min(poll, left)), sent
+        except subprocess.TimeoutExpired:
+            pass
+        if sent is None and soft_stop.requested() is not None:
+            for name in soft_stop_files:
+                (rundir / name).touch()
+            sent = time.monotonic()
+            log.warning(
+                "asked %s to stop cleanly before the job's time limit: created %s in %s",
+                program, ", ".join(soft_stop_files), rundir,
+            )  # fmt: skip
+
+
 def run_program(
     argv: list[str],
     workdir: Path,
@@ -99,10 +164,19 @@ def run_program(
     timeout: float | None = None,
     step: int | None = None,
     values: Mapping[str, object] | None = None,
+    soft_stop_files: Sequence[str] = (),
+    poll: float = 0.5,
 ) -> float:
     """Run ``argv`` through the launcher in ``workdir`` (or its scratch copy); returns seconds.
 
+    ``soft_stop_files`` (names relative to the folder the program runs in) are created when a
+    stop request comes while the program runs (:mod:`ionwell.engines.soft_stop`; checked every
+    ``poll`` seconds): the program's own way of stopping cleanly with its restart files written.
+    Stale ones are removed before the start and all of them after the end, so a retry runs on.
+
     Raises:
+        SoftStopped: a stop request came, the soft-stop files were created and the program has
+            stopped (whatever its exit status): the attempt is not finished.
         EngineRunError: the program is missing, timed out, was killed, or exited non-zero; the
             message names the step, the program, and the last lines of its output.
     """
@@ -118,9 +192,17 @@ def run_program(
         rundir = base / f"ionwell-{os.getpid()}-{workdir.parent.name}"
         shutil.rmtree(rundir, ignore_errors=True)
         shutil.copytree(workdir, rundir)
+    soft_stop_files = list(soft_stop_files)
+    _remove(rundir, soft_stop_files)
+    if soft_stop_files and soft_stop.requested() is not None:
+        raise SoftStopped(
+            f"{where}{argv[0]} not started: the job was asked to stop before its time limit "
+            f"({soft_stop.STOP_SIGNAL.name}); the retry starts it"
+        )
     log.info("%srunning %s in %s", where, " ".join(full), rundir)
     out_path = (rundir / stdout) if stdout else None
     t0 = time.monotonic()
+    stop_sent: float | None = None  # time.monotonic() when the soft-stop files were created
     try:
         with open(out_path, "wb") if out_path else open(os.devnull, "wb") as out:
             try:
@@ -131,7 +213,7 @@ def run_program(
                     stdin=subprocess.DEVNULL,
                     stdout=out,
                     stderr=subprocess.STDOUT,
-                    preexec_fn=die_with_parent,
+                    preexec_fn=_child_setup,
                 )
             except FileNotFoundError:
                 raise EngineRunError(
@@ -143,7 +225,8 @@ def run_program(
                     f"{where}cannot start {full[0]!r}: permission denied"
                 ) from None
             try:
-                code = child.wait(timeout=timeout)
+                code, stop_sent = _wait(child, timeout, soft_stop_files, rundir, argv[0], poll)
+                ended = time.monotonic()
             except subprocess.TimeoutExpired:
                 child.kill()
                 child.wait()
@@ -155,10 +238,24 @@ def run_program(
                 child.wait()
                 raise
     finally:
+        _remove(rundir, soft_stop_files)
         if rundir != workdir:
             _copy_back(rundir, workdir)
             shutil.rmtree(rundir, ignore_errors=True)
     seconds = time.monotonic() - t0
+    if stop_sent is not None:
+        stopped_after = ended - stop_sent
+        log.warning(
+            "%s%s stopped %.1f s after its soft stop (exit status %s, %.1f s in all); the "
+            "attempt is not finished, the retry continues from its restart files",
+            where, argv[0], stopped_after, code, ended - t0,
+        )  # fmt: skip
+        raise SoftStopped(
+            f"{where}{argv[0]} was asked to stop before the job's time limit "
+            f"({soft_stop.STOP_SIGNAL.name}) and stopped cleanly {stopped_after:.1f} s later "
+            f"(exit status {code}, {ended - t0:.1f} s in all); the attempt is not finished and "
+            "the retry continues from the program's restart files"
+        )
     if code != 0:
         tail = ""
         if stdout and (workdir / stdout).is_file():

@@ -119,6 +119,9 @@ def campaign_status(root: str | Path) -> CampaignStatus:
         elif err is not None:
             state = f"failed at step {err.step}"
             detail = err.message
+        elif (full := _disk_full(paths)) is not None:
+            state = f"failed at step {nxt}"
+            detail = full
         elif records:
             state = f"paused after step {records[-1].step} (resume with: ionwell run)"
         else:
@@ -147,6 +150,25 @@ def campaign_status(root: str | Path) -> CampaignStatus:
         mu=mu,
         mu_source=mu_source,
         charge_mode=campaign.guest.charge_mode,
+    )
+
+
+#: a campaign's file system with less free space than this cannot take a step's files
+LOW_SPACE = 16 * 2**20
+
+
+def _disk_full(paths: CampaignPaths) -> str | None:
+    """Why an unfinished campaign that recorded no failure cannot go on: its file system is
+    full (a full disk cannot take the step's ``error.json`` either). None otherwise."""
+    try:
+        free = shutil.disk_usage(paths.root).free
+    except OSError:
+        return None
+    if free >= LOW_SPACE:
+        return None
+    return (
+        f"no space left on device: {free / 1024:.0f} KiB free on the file system of "
+        f"{paths.root}; free space, then resume with: ionwell run"
     )
 
 

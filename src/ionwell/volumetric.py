@@ -81,9 +81,16 @@ from pydantic import BaseModel, ConfigDict, ValidationError
 
 from ionwell.engine_config import POTENTIAL_UNITS, PotentialSpec
 from ionwell.errors import EngineOutputError, GridError
-from ionwell.grid import Grid, orient, read_cube
+from ionwell.grid import Grid, check_array_file, orient, read_cube
 
-__all__ = ["SUFFIXES", "read_potential", "sidecar_path", "write_potential_npy"]
+__all__ = [
+    "SUFFIXES",
+    "not_a_potential",
+    "read_map",
+    "read_potential",
+    "sidecar_path",
+    "write_potential_npy",
+]
 
 logger = logging.getLogger(__name__)
 
@@ -146,6 +153,21 @@ def read_potential(
 ) -> Grid:
     """Read a potential map and return it in volts, in the potential convention.
 
+    The grid of :func:`read_map` (see there).
+    """
+    return read_map(path, spec, atoms, step, pbc)[0]
+
+
+def read_map(
+    path: str | Path,
+    spec: PotentialSpec,
+    atoms: Atoms | None = None,
+    step: int | None = None,
+    pbc: Sequence[bool] | None = None,
+) -> tuple[Grid, Atoms | None]:
+    """Read a potential map and return it in volts, in the potential convention, with the
+    atoms the file lists (cube, XSF; Å, in the file's own frame) or None (npy/npz).
+
     Periodicity: a format that cannot say it (cube, npy without ``pbc``) is periodic along an
     axis where ``atoms`` is periodic and the grid spans its cell vector (:func:`periodic_like`);
     ``pbc`` states it outright (:func:`with_periodicity`). A map whose file lists the atoms
@@ -162,7 +184,7 @@ def read_potential(
 
     Returns:
         The grid: values in volts (float64, or float32 when an npy/npz array is float32),
-        origin and axes in Å, positive at the nuclei.
+        origin and axes in Å, positive at the nuclei; and the file's atoms (None for npy/npz).
 
     Raises:
         EngineOutputError: the file is missing, empty, truncated or malformed, its sidecar is
@@ -187,6 +209,14 @@ def read_potential(
     declared_sign: str | None = None
     convention = "V"  # the format's own convention, used only when the config gives no unit
     file_atoms: Atoms | None = None
+    if fmt in ("cube", "xsf") and (said := not_a_potential(path, fmt)) is not None:
+        logger.warning(
+            "%s%s: the header says %r, not an electrostatic potential; read as one all the same "
+            "(in a campaign, check that the engine's outputs.potential names the potential map)",
+            fail.prefix,
+            path,
+            said,
+        )
     if fmt == "cube":
         grid, file_atoms = _read_cube(path, fail)
         convention = "hartree"  # atomic units, hartree/e
@@ -244,7 +274,57 @@ def read_potential(
     logger.debug(
         "read %s potential map %s: shape %s, unit %s, sign %s", fmt, path, grid.shape, unit, sign
     )
-    return grid
+    return grid, file_atoms
+
+
+#: Words in a map's header that name what it holds (whole words, case-insensitive): a header
+#: naming a potential is one; else a header naming one of the others is not.
+POTENTIAL_WORDS = frozenset({"potential", "potentials", "electrostatic", "esp", "mep", "locpot"})
+OTHER_WORDS = frozenset(
+    {
+        "density", "densities", "rho", "orbital", "orbitals", "wavefunction", "wavefunctions",
+        "elf", "chgcar", "homo", "lumo",
+    }
+)  # fmt: skip
+
+
+def not_a_potential(path: str | Path, fmt: str | None = None) -> str | None:
+    """The header text of a map file saying it holds something other than a potential, or None.
+
+    Read are a cube's two comment lines and an XSF file's data-grid block names (npy/npz carry
+    no free text). A line counts when it names one of :data:`OTHER_WORDS` (an electron or spin
+    density, an orbital, ELF) and none of :data:`POTENTIAL_WORDS` — so Gaussian's
+    "Electrostatic potential from Total SCF Density" is a potential, PySCF's "Electron density
+    in real space" is not, and a header that says neither (ASE's, Quantum ESPRESSO's) passes.
+    """
+    import re
+
+    path = Path(path)
+    fmt = fmt or SUFFIXES.get(path.suffix.lower(), "cube")
+    lines: list[str] = []
+    try:
+        with path.open("rb") as f:
+            if fmt == "cube":
+                lines = [f.readline(4096).decode("latin-1") for _ in range(2)]
+            elif fmt == "xsf":
+                block = False
+                for raw in f:
+                    text = raw.decode("latin-1").strip()
+                    if block:
+                        lines.append(text)  # the block's name
+                        block = False
+                    if text.upper().startswith("BEGIN_BLOCK_DATAGRID_3D"):
+                        block = True
+                    elif text.upper().startswith("BEGIN_DATAGRID_3D"):
+                        lines.append(text[len("BEGIN_DATAGRID_3D") :])
+                        break
+    except OSError:
+        return None  # the reader names the problem
+    for line in lines:
+        words = set(re.findall(r"[a-z]+", line.lower()))
+        if words & OTHER_WORDS and not words & POTENTIAL_WORDS:
+            return line.strip()
+    return None
 
 
 #: Largest deviation (Å) from one common shift for the file's atoms to count as ours, moved.
@@ -300,7 +380,7 @@ def _align(grid: Grid, file_atoms: Atoms, atoms: Atoms, fail: _Fail) -> Grid:
     if len(file_atoms) != len(atoms):
         raise fail(
             f"the file lists {len(file_atoms)} atoms, the structure has {len(atoms)}: the map "
-            "does not belong to this step's structure"
+            "does not belong to the structure"
         )
     if list(file_atoms.numbers) != list(atoms.numbers):
         raise fail("the file lists other elements, or another order, than the structure")
@@ -318,7 +398,7 @@ def _align(grid: Grid, file_atoms: Atoms, atoms: Atoms, fail: _Fail) -> Grid:
     if worst > FRAME_TOLERANCE:
         raise fail(
             f"the file's atoms are not the structure's atoms moved by one shift (off by up to "
-            f"{worst:.3f} Å): the map does not belong to this step's structure"
+            f"{worst:.3f} Å): the map does not belong to the structure"
         )
     if np.abs(shift).max() > 1e-6:
         logger.info("map %s written in a shifted frame; moved by %s Å", fail.path, shift.round(4))
@@ -426,6 +506,10 @@ def _load_array(path: Path, fail: _Fail) -> np.ndarray:
             "expected a 3-D numeric array"
         )
     try:
+        check_array_file(path)  # before numpy allocates what the headers declare
+    except GridError as err:
+        raise fail.grid_error(err) from None
+    try:
         loaded = np.load(path, allow_pickle=False)
     except OSError as err:
         raise fail(f"cannot read the array file ({err.strerror or err})") from None
@@ -528,9 +612,37 @@ def write_potential_npy(path: str | Path, grid: Grid, unit: Unit = "V") -> None:
 # XSF
 
 
+def _check_xsf_size(path: Path, fail: _Fail) -> None:
+    """Refuse a data grid whose declared point count exceeds what the rest of the file can
+    hold (each value is a digit and a separator at least), before ASE parses it."""
+    try:
+        size = path.stat().st_size
+        with path.open("rb") as f:
+            for raw in f:
+                if raw.strip().upper().startswith(b"BEGIN_DATAGRID_3D"):
+                    counts = f.readline().split()
+                    break
+            else:
+                return  # no data grid: the reader names it
+            room = (size - f.tell() + 1) // 2
+    except OSError:
+        return  # the reader names it
+    try:
+        n = [int(c) for c in counts[:3]]
+    except ValueError:
+        return
+    if len(n) == 3 and all(k > 0 for k in n) and math.prod(n) > room:
+        raise fail(
+            f"the data grid declares {n[0]}×{n[1]}×{n[2]} = {math.prod(n)} values, but the file "
+            f"is {size} bytes, with room for at most {room} numbers after that line; expected "
+            "point counts that match the file (wrong counts, or a truncated file)"
+        )
+
+
 def _read_xsf(path: Path, fail: _Fail) -> tuple[Grid, Atoms]:
     from ase.io.xsf import read_xsf
 
+    _check_xsf_size(path, fail)
     try:
         with path.open() as f:
             data, origin, span, atoms = read_xsf(f, read_data=True)

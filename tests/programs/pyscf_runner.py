@@ -115,6 +115,8 @@ def main() -> int:
     if keys.get("restart") == "yes" and Path("runner.chk").is_file():
         dm0 = mf.from_chk("runner.chk")
         print("restart: initial guess from runner.chk", flush=True)
+    else:
+        print("initial guess: superposition of atoms", flush=True)
 
     def each(env: dict) -> None:
         print(f"iteration {env['cycle'] + 1} energy {env['e_tot']:.10f}", flush=True)
@@ -134,6 +136,9 @@ def main() -> int:
     charges = mf.mulliken_pop(verbose=0)[1]
     for i, (s, q) in enumerate(zip(mol.elements, charges, strict=True)):
         print(f"atom {i:4d} {s:<3s} charge {q: .6f}")
+    meta = mf.mulliken_meta(verbose=0)[1]  # meta-Lowdin charges, a second scheme
+    for i, (s, q) in enumerate(zip(mol.elements, meta, strict=True)):
+        print(f"atom {i:4d} {s:<3s} meta-lowdin {q: .6f}")
     occ = np.asarray(mf.mo_occ).reshape(-1, mol.nao_nr())
     ene = np.asarray(mf.mo_energy).reshape(-1, mol.nao_nr())
     homo = max(float(ene[c][occ[c] > 0].max()) for c in range(len(occ)))

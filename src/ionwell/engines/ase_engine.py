@@ -406,8 +406,8 @@ class AseEngine(InProcessEngine):
                 grid = grid_from_calculator(value, atoms, cfg.potential_sign)
                 model = getattr(calc, "potential_model", "exact")
                 return grid, model if isinstance(model, str) else "exact"
-        if cfg.potential is None:
-            raise EngineOutputError(
+        if cfg.potential is None:  # the config's: fails the same way on every try
+            raise ConfigError(
                 f"{workdir}: the calculator {cfg.calculator} offers no potential map "
                 "(no get_electrostatic_potential()) and no 'engine.potential' file is "
                 "configured; set engine.potential to the map file the calculator writes"

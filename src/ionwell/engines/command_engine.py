@@ -20,8 +20,9 @@ Otherwise globs in ``restart.previous`` are copied from the previous step's engi
 start), with the same effect — but only when the previous step's structure had the same number
 of atoms: codes ignore restart files of another system and start cold, so then nothing is
 copied, ``${restart}`` is ``restart.fresh`` and a note says why. ``warm_started`` in the result
-is true only when restart files were in place and (with ``restart.used``) the output proves the
-program read them. Outputs of the earlier attempt are removed first, so nothing stale is ever
+is true only when restart files were in place, (with ``restart.used``) the output proves the
+program read them and (with ``restart.not_used``) it does not say it started from its own guess
+instead. Outputs of the earlier attempt are removed first, so nothing stale is ever
 read.
 
 Version: with ``outputs.version`` the recorded ``code_version`` is what the program printed (the
@@ -51,7 +52,9 @@ from ionwell.campaign import atomic_write_json
 from ionwell.engine_config import (
     ENERGY_UNITS,
     CellSpec,
+    ChargesSpec,
     CommandEngineConfig,
+    CountSpec,
     LauncherConfig,
     StructureSpec,
     ValueSpec,
@@ -60,7 +63,7 @@ from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.engines.results import CONTEXT, INPUT, read_inputs, write_inputs
 from ionwell.errors import ConfigError, EngineOutputError, IonwellError
 from ionwell.grid import Grid
-from ionwell.launcher import EngineRunError, ScfNotConverged, fill, run_program
+from ionwell.launcher import EngineRunError, ScfNotConverged, SoftStopped, fill, run_program
 
 __all__ = ["CommandEngine", "needs_box", "program_frame", "structure_block"]
 
@@ -114,6 +117,19 @@ def program_frame(atoms: Atoms, spec: CellSpec) -> tuple[Atoms, np.ndarray, bool
     return a, shift, True
 
 
+def kpoint_mesh(atoms: Atoms, boxed: bool, spacing: float | None) -> str:
+    """The k-point mesh ``"n1 n2 n3"`` for a k-point spacing (Å⁻¹, no 2π: ASE's ``kspacing``
+    convention, :func:`ase.io.espresso.kspacing_to_grid`, each count rounded up); 1 along a
+    non-periodic axis, and ``"1 1 1"`` for a boxed structure or without a spacing."""
+    if boxed or spacing is None:
+        return "1 1 1"
+    from ase.io.espresso import kspacing_to_grid
+
+    mesh = [n if periodic else 1 for n, periodic in zip(
+        kspacing_to_grid(atoms, float(spacing)), atoms.pbc, strict=True)]  # fmt: skip
+    return " ".join(str(int(n)) for n in mesh)
+
+
 def _cell_block(atoms: Atoms) -> str:
     return "\n".join(f"{a:16.10f} {b:16.10f} {c:16.10f}" for a, b, c in np.asarray(atoms.cell))
 
@@ -153,7 +169,8 @@ class CommandEngine:
     def _output_globs(self) -> list[str]:
         o = self.cfg.outputs
         globs = [o.energy.file, o.potential.file]
-        for spec in (o.forces, o.charges, o.fermi_level, o.homo, o.lumo, o.structure):
+        specs = (o.forces, *o.charge_specs, o.scf_iterations, o.fermi_level, o.homo, o.lumo)
+        for spec in (*specs, o.structure):
             if spec is not None:
                 globs.append(spec.file)
         globs.append(self.cfg.converged.scf.file)
@@ -173,15 +190,15 @@ class CommandEngine:
         a, _, boxed = program_frame(atoms, self.cfg.cell)
         n_el = int(sum(a.numbers)) - context.charge
         spin = context.spin if context.spin is not None else n_el % 2
-        chosen = {
-            name: (c.box if boxed else c.periodic) for name, c in self.cfg.cell.placeholders.items()
-        }
-        return {
-            **self.cfg.settings,
-            **chosen,
+        builtin = {
             "structure": structure_block(a),
             "cell": _cell_block(a),
             "box": " ".join(f"{x:.6f}" for x in a.cell.lengths()),
+            **{
+                f"cell_{axis}": " ".join(f"{x:.6f}" for x in vector)
+                for axis, vector in zip("abc", np.asarray(a.cell), strict=True)
+            },
+            "kpoint_mesh": kpoint_mesh(a, boxed, self.cfg.settings.get("kpoint_spacing")),
             "boxed": "true" if boxed else "false",
             "unrestricted": "true" if spin else "false",
             "natoms": len(a),
@@ -192,6 +209,17 @@ class CommandEngine:
             "input": self.cfg.input.file,
             "restart": self.cfg.restart.value if restart else self.cfg.restart.fresh,
         }
+        # a cell choice may name the definition's settings or the built-in values, e.g. QE's
+        # k-point spacing: kspacing: {box: null, periodic: "${kpoint_spacing}"} (the value keeps
+        # its type), or CP2K's k-point section with "${kpoint_mesh}"
+        known = {**self.cfg.settings, **builtin}
+        chosen = {
+            name: self._typed(
+                c.box if boxed else c.periodic, known, f"engine.cell.placeholders.{name}"
+            )
+            for name, c in self.cfg.cell.placeholders.items()
+        }
+        return {**self.cfg.settings, **chosen, **builtin}
 
     def _typed(self, value: Any, values: dict[str, Any], where: str) -> Any:
         """Fill placeholders in writer parameters; ``"${name}"`` alone keeps its type."""
@@ -253,6 +281,9 @@ class CommandEngine:
         a, shift, boxed = program_frame(atoms, cfg.cell)
         values = self.values(atoms, context, restart_from is not None)
         target = workdir / cfg.input.file
+        # sub-folders of the engine folder that written files go to (the config keeps them inside)
+        for name in (cfg.input.file, *cfg.extra_inputs, *([cfg.stdout] if cfg.stdout else [])):
+            (workdir / name).parent.mkdir(parents=True, exist_ok=True)
         if cfg.input.format is not None:
             params = self._typed(dict(cfg.input.parameters), values, "engine.input.parameters")
             try:
@@ -318,13 +349,20 @@ class CommandEngine:
     def launch(self, workdir: Path, launcher: LauncherConfig) -> float:
         """Run every command through ``launcher`` in ``workdir``; returns the seconds taken.
 
+        The program (``argv``) gets the definition's ``soft_stop`` files when the job is warned
+        of its time limit (:mod:`ionwell.engines.soft_stop`); the ``then`` commands are short
+        and run to their end.
+
         Raises:
+            SoftStopped: the program stopped on its soft-stop files (the attempt is not
+                finished; whatever its output says, it is neither a result nor an SCF failure).
             EngineRunError: a command could not start, timed out, was killed or failed.
         """
         workdir = Path(workdir)
         values = self.placeholder_values(workdir)
         step = json.loads((workdir / CONTEXT).read_text()).get("step")
         seconds = 0.0
+        stop_files = self.cfg.soft_stop.files if self.cfg.soft_stop is not None else []
         for i, argv in enumerate(self.commands()):
             stdout = self.cfg.stdout if i == 0 else f"then-{i}.log"
             try:
@@ -336,7 +374,10 @@ class CommandEngine:
                     timeout=self.cfg.timeout,
                     step=step,
                     values=values,
+                    soft_stop_files=stop_files if i == 0 else (),
                 )
+            except SoftStopped:
+                raise
             except EngineRunError as err:
                 failed = self.cfg.converged.scf_failed
                 if i == 0 and failed is not None and self._says(workdir, failed):
@@ -439,6 +480,40 @@ class CommandEngine:
             )
         return last, None
 
+    def _charges(self, workdir: Path, spec: ChargesSpec, n: int, where: str) -> list[float]:
+        """The last ``n`` charges (e) matching ``spec`` in its file, one per atom."""
+        path, text = self._text(workdir, spec.file, f"{spec.scheme} charges")
+        found = re.findall(spec.regex, text, flags=re.MULTILINE)
+        found = [f[0] if isinstance(f, tuple) else f for f in found]
+        if len(found) < n:
+            raise EngineOutputError(
+                f"{where}{path}: {len(found)} lines match the {spec.scheme} charge pattern, "
+                f"expected at least {n} (one per atom)"
+            )
+        try:
+            charges = [_number(x) for x in found[-n:]]
+        except ValueError as err:
+            raise EngineOutputError(
+                f"{where}{path}: unreadable {spec.scheme} charge ({err})"
+            ) from None
+        if not all(math.isfinite(q) for q in charges):
+            raise EngineOutputError(f"{where}{path}: non-finite {spec.scheme} charges")
+        return charges
+
+    def _count(self, workdir: Path, spec: CountSpec, what: str) -> int | None:
+        """The last integer matching ``spec`` (None, logged, when the line is missing)."""
+        path, text = self._text(workdir, spec.file, what)
+        found = re.findall(spec.regex, text, flags=re.MULTILINE)
+        if not found:
+            log.info("%s: no line matching %r (%s not recorded)", path, spec.regex, what)
+            return None
+        try:
+            return int(found[-1])
+        except ValueError:
+            raise EngineOutputError(
+                f"{self._step(workdir)}{path}: {what} {found[-1]!r} is not an integer"
+            ) from None
+
     def _says(self, workdir: Path, pattern) -> bool:
         """Whether an output file matches ``pattern`` (False when the file is missing)."""
         try:
@@ -503,22 +578,13 @@ class CommandEngine:
                 raise EngineOutputError(f"{where}{out.forces.file}: forces hold non-finite values")
             forces = f.tolist()
 
-        charges = None
-        if out.charges is not None:
-            path, text = self._text(workdir, out.charges.file, "atomic charges")
-            found = re.findall(out.charges.regex, text, flags=re.MULTILINE)
-            found = [f[0] if isinstance(f, tuple) else f for f in found]
-            if len(found) < n:
-                raise EngineOutputError(
-                    f"{where}{path}: {len(found)} lines match the charge pattern, expected at "
-                    f"least {n} (one per atom)"
-                )
-            try:
-                charges = [_number(x) for x in found[-n:]]
-            except ValueError as err:
-                raise EngineOutputError(f"{where}{path}: unreadable charge ({err})") from None
-            if not all(math.isfinite(q) for q in charges):
-                raise EngineOutputError(f"{where}{path}: non-finite atomic charges")
+        charge_sets = {
+            spec.scheme: self._charges(workdir, spec, n, where) for spec in out.charge_specs
+        }
+        main = out.charge_specs[0].scheme if out.charge_specs else None
+        iterations = None
+        if out.scf_iterations is not None:
+            iterations = self._count(workdir, out.scf_iterations, "the SCF iteration count")
 
         levels = {}
         for key in ("fermi_level", "homo", "lumo"):
@@ -550,11 +616,18 @@ class CommandEngine:
             warm, note = self._found(workdir, cfg.restart.used, "use of the restart files")
             if note:
                 notes.append(note)
+        if warm and cfg.restart.not_used is not None and self._says(workdir, cfg.restart.not_used):
+            warm = False
+            notes.append(
+                f"{cfg.restart.not_used.file}: the program says it did not use the restart files "
+                f"(a line matches {cfg.restart.not_used.regex!r}); not a warm start"
+            )
 
         result = StepResult(
             energy=energy,
             forces=forces,
             scf_converged=scf_ok,
+            scf_iterations=iterations,
             relax_converged=relax_ok,
             symbols=final.get_chemical_symbols(),
             positions=np.asarray(final.positions, dtype=float).tolist(),
@@ -562,8 +635,9 @@ class CommandEngine:
             pbc=[bool(x) for x in atoms.pbc],
             charge=ctx.charge,
             spin=int(state.get("values", {}).get("spin", 0)),
-            charges=charges,
-            charge_scheme=out.charges.scheme if out.charges is not None else None,
+            charges=charge_sets[main] if main else None,
+            charge_scheme=main,
+            charge_sets=charge_sets or None,
             code=cfg.label,
             code_version=version,
             wall_time=float(state.get("seconds", 0.0)),

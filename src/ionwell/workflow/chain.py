@@ -54,13 +54,21 @@ from ionwell.campaign import (
     load_frozen,
 )
 from ionwell.config import Campaign
-from ionwell.engines import get_engine
+from ionwell.engines import get_engine, soft_stop
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.engines.results import INPUT as ENGINE_INPUT
 from ionwell.engines.results import POTENTIAL as ENGINE_MAP
 from ionwell.engines.run import run_engine
-from ionwell.errors import IonwellError, LedgerError
+from ionwell.errors import (
+    ErrorKind,
+    IonwellError,
+    LedgerError,
+    StepFailedError,
+    describe_exception,
+    error_kind,
+)
 from ionwell.host import host_formula_units
+from ionwell.launcher import SoftStopped
 from ionwell.ledger import (
     LedgerRecord,
     Rejection,
@@ -68,6 +76,7 @@ from ionwell.ledger import (
     hash_step_files,
     input_digests,
     last_record,
+    read_ledger,
     sha256_file,
     sync_mirror,
 )
@@ -87,6 +96,7 @@ __all__ = [
     "assess",
     "collect",
     "compute",
+    "republish_statuses",
     "prepare",
 ]
 
@@ -123,6 +133,12 @@ class Computed(_Marker):
     parse_error: str | None = None
     job_id: str | None = None
     seconds: float
+    failed: str | None = Field(
+        None,
+        description="a failure that repeats on every try: the job ends normally (so it is not "
+        "retried) and `collect` reports it",
+    )
+    failed_kind: ErrorKind | None = None
 
 
 class Collected(_Marker):
@@ -153,11 +169,14 @@ class StepStatus(BaseModel):
 
 
 class StepError(BaseModel):
-    """Why the latest attempt at a step failed (the step is not finished)."""
+    """Why the latest attempt at a step failed (the step is not finished). ``kind``: ``input``,
+    ``disk`` and ``memory`` fail the same way on every try (not retried; fix the cause, then
+    ``ionwell run`` again), ``transient`` ones are retried."""
 
     step: int
     message: str
     time: str
+    kind: ErrorKind = "transient"
 
 
 def _now() -> str:
@@ -254,14 +273,20 @@ def _job_id(workdir: Path) -> str | None:
 
 
 def _fail(paths: CampaignPaths, step: int, err: BaseException) -> None:
-    msg = str(err) if isinstance(err, IonwellError) else f"{type(err).__name__}: {err}"
+    msg = describe_exception(err)
+    kind = error_kind(err)
     with contextlib.suppress(OSError):
         atomic_write_text(
             StepPaths(paths.step(step)).error,
-            StepError(step=step, message=msg, time=_now()).model_dump_json(indent=2),
+            StepError(step=step, message=msg, time=_now(), kind=kind).model_dump_json(indent=2),
         )
-        append_event(paths, step=step, event="failed", message=msg)
-    log.error("step %04d failed: %s", step, msg)
+        # a program stopped on the scheduler's warning is no failure: the retry continues it
+        event = "stopped" if isinstance(err, SoftStopped) else "failed"
+        append_event(paths, step=step, event=event, message=msg)
+    if isinstance(err, SoftStopped):
+        log.warning("step %04d stopped before the time limit, not finished: %s", step, msg)
+    else:
+        log.error("step %04d failed: %s", step, msg)
 
 
 @contextlib.contextmanager
@@ -444,7 +469,30 @@ def compute(root: str | Path, step: int, round_: int = 0) -> Computed:
     job, or as a remote job). Writes no ledger record."""
     paths = CampaignPaths(Path(root))
     with _reported(paths, step), _step_lock(paths):
-        return _compute(paths, step, round_)
+        t0 = time.monotonic()
+        try:
+            return _compute(paths, step, round_)
+        except Exception as err:
+            if error_kind(err) == "transient":
+                raise  # Snakemake retries the job
+            return _failed_for_good(paths, step, round_, err, time.monotonic() - t0)
+
+
+def _failed_for_good(
+    paths: CampaignPaths, step: int, round_: int, err: Exception, seconds: float
+) -> Computed:
+    """A compute failure that repeats on every try (bad input, no space left, out of memory):
+    the job ends normally with the failure in its marker, so Snakemake does not retry it, and
+    `collect` (never retried) reports it and removes the marker (the next run computes
+    again)."""
+    log.debug("step %04d: %s (not retried: it fails the same way on every try)", step, err)
+    sp = StepPaths(paths.step(step))
+    computed = Computed(
+        step=step, round=round_, remedies=[], scf_converged=None, job_id=_job_id(sp.engine),
+        seconds=round(seconds, 3), failed=describe_exception(err), failed_kind=error_kind(err),
+    )  # fmt: skip
+    _write_marker(sp.marker(round_, "computed"), computed)
+    return computed
 
 
 def _compute(paths: CampaignPaths, step: int, round_: int) -> Computed:
@@ -462,7 +510,9 @@ def _compute(paths: CampaignPaths, step: int, round_: int) -> Computed:
     )  # fmt: skip
     t0 = time.monotonic()
     relative = f"steps/{step_label(step)}/engine"
-    with _watch_controller(paths):
+    # the scheduler's warning before the time limit (SIGUSR1) stops an external program
+    # through its soft-stop files; SoftStopped then leaves the step unfinished (no marker)
+    with _watch_controller(paths), soft_stop.listening():
         done = run_engine(campaign, atoms, sp.engine, ctx, relative, tolerate_parse_errors=True)
     computed = Computed(
         step=step,
@@ -506,6 +556,11 @@ def collect(root: str | Path, step: int, round_: int = 0) -> Collected:
 def _collect(paths: CampaignPaths, step: int, round_: int) -> Collected:
     campaign = _campaign(paths)
     sp = StepPaths(paths.step(step))
+    marker = sp.marker(round_, "computed")
+    comp = _read_marker(marker, Computed)
+    if comp.failed is not None:  # failed for good (see _failed_for_good): not collected
+        marker.unlink(missing_ok=True)
+        raise StepFailedError(comp.failed, comp.failed_kind or "input")
     result, pot = get_engine(campaign).collect(sp.engine)
     _dedupe(sp.input, sp.engine / ENGINE_INPUT)  # the compute is over: inputs are final
     engine_map = sp.engine / ENGINE_MAP
@@ -545,14 +600,37 @@ def assess(root: str | Path, step: int, round_: int = 0) -> Verdict:
         return _assess(paths, step, round_)
 
 
+def _publish_status(paths: CampaignPaths, rec: LedgerRecord) -> None:
+    status = StepStatus(
+        step=rec.step, outcome=rec.outcome, stop_reason=rec.stop_reason, record=rec.hash
+    )
+    atomic_write_text(StepPaths(paths.step(rec.step)).status, status.model_dump_json(indent=2))
+
+
+def republish_statuses(paths: CampaignPaths) -> list[int]:
+    """Publish again the ``status.json`` of recorded steps that lost it (removed by hand or by
+    a tool): the ledger record is the truth, the status file its published copy. Returns the
+    steps re-published; costs one ``stat`` per recorded step when nothing is missing."""
+    tip = last_record(paths.ledger)
+    if tip is None:
+        return []
+    missing = {n for n in range(tip.step + 1) if not StepPaths(paths.step(n)).status.exists()}
+    if not missing:
+        return []
+    done = []
+    for rec in read_ledger(paths.ledger):
+        if rec.step in missing and paths.step(rec.step).is_dir():
+            _publish_status(paths, rec)
+            append_event(paths, step=rec.step, event="republished")
+            done.append(rec.step)
+    return done
+
+
 def _republish(
     paths: CampaignPaths, rec: LedgerRecord, round_: int, stage: str = "verdict"
 ) -> Verdict:
     sp = StepPaths(paths.step(rec.step))
-    status = StepStatus(
-        step=rec.step, outcome=rec.outcome, stop_reason=rec.stop_reason, record=rec.hash
-    )
-    atomic_write_text(sp.status, status.model_dump_json(indent=2))
+    _publish_status(paths, rec)
     verdict = Verdict(
         step=rec.step, round=round_, outcome=rec.outcome, stop_reason=rec.stop_reason,
         record=rec.hash,
@@ -870,6 +948,8 @@ def _screen_one(
     energy, message = None, ""
     try:
         done = run_engine(variant, trial, wd, ctx)
+    except SoftStopped:  # stopped before the job's time limit: the retry computes it
+        raise
     except IonwellError as err:
         message = str(err)
         log.warning("step %04d: screening candidate %d failed: %s", step, index, err)
@@ -896,7 +976,8 @@ def screen(root: str | Path, step: int, round_: int, candidate: int) -> Screened
         prep = _read_marker(sp.marker(round_, "prepared"), Prepared)
         site = verdict.sites[candidate]
         relaxed = read(sp.relaxed)
-        energy, message = _screen_one(campaign, relaxed, sp, step, prep.guests, candidate, site)
+        with soft_stop.listening():
+            energy, message = _screen_one(campaign, relaxed, sp, step, prep.guests, candidate, site)
         out = Screened(
             step=step, round=round_, candidate=candidate, position=site, energy=energy,
             message=message,

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import contextlib
+from datetime import UTC, datetime
 from pathlib import Path
 
 from ase.io import read
@@ -13,7 +15,7 @@ from ionwell.ledger import last_record, read_ledger, sync_mirror
 from ionwell.store.paths import StepPaths
 from ionwell.workflow.chain import StepError
 
-__all__ = ["CampaignSummary", "describe_error", "summarize"]
+__all__ = ["CampaignSummary", "describe_error", "record_error", "summarize"]
 
 
 class CampaignSummary(BaseModel):
@@ -53,6 +55,22 @@ def summarize(root: str | Path) -> CampaignSummary:
     )
     atomic_write_text(paths.summary, summary.model_dump_json(indent=2))
     return summary
+
+
+def record_error(paths: CampaignPaths, message: str, kind: str = "transient") -> StepError:
+    """The failure of the newest unfinished step as the controller learnt it (the step's own
+    ``error.json`` could not be written, e.g. on a full disk), written there when possible."""
+    tip = last_record(paths.ledger)
+    nxt = 0 if tip is None else tip.step + 1
+    err = StepError(
+        step=nxt, message=message, time=datetime.now(UTC).isoformat(timespec="seconds"),
+        kind=kind,
+    )  # fmt: skip
+    f = StepPaths(paths.step(nxt)).error
+    with contextlib.suppress(OSError):
+        if f.parent.is_dir():
+            atomic_write_text(f, err.model_dump_json(indent=2))
+    return err
 
 
 def describe_error(paths: CampaignPaths) -> StepError | None:
