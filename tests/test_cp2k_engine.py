@@ -69,7 +69,12 @@ def _direct_h2(folder: Path) -> tuple[float, str, float]:
     on each side, centred, not periodic). Returns (total energy in eV, the output's text,
     seconds)."""
     vac = float(SPEC["cell"]["box"]["vacuum"])
-    boxed = {name: choice["box"] for name, choice in SPEC["cell"]["placeholders"].items()}
+    # the box's choice of each cell placeholder, its own placeholders filled from the settings
+    # (as the engine does: the OT solver block names max_scf, eps_scf, ...)
+    boxed = {
+        name: string.Template(str(choice["box"])).substitute(**SPEC["settings"])
+        for name, choice in SPEC["cell"]["placeholders"].items()
+    }
     text = string.Template(TEMPLATE.read_text()).substitute(
         **SPEC["settings"],
         **boxed,

@@ -310,10 +310,27 @@ class PlacementConfig(_Model):
         return self
 
 
+class PreRelaxConfig(_Model):
+    """A cheap relaxation before the engine's own: the movable atoms relaxed first with GFN-xTB
+    (tblite, in-process), then handed to the engine, whose relaxation starts from there."""
+
+    method: Literal["GFN2-xTB", "GFN1-xTB"] = "GFN2-xTB"
+    fmax: float = Field(0.1, gt=0.0, le=10.0, description="force threshold, eV/Å")
+    steps: int = Field(50, ge=1, le=10000, description="optimizer step cap")
+    electronic_temperature: float = Field(
+        300.0, ge=0.0, le=50000.0, description="electronic temperature of the SCC, K"
+    )
+
+
 class RelaxConfig(_Model):
     """Relaxation after insertion, with an ASE optimizer on the engine's forces."""
 
     enabled: bool = True
+    pre: PreRelaxConfig | None = Field(
+        None,
+        description="relax with GFN-xTB (tblite) first, then with the engine (ignored when "
+        "relaxation is off)",
+    )
     move: Literal["guests", "all"] = Field("guests", description="which atoms may move")
     optimizer: Literal["BFGS", "FIRE", "LBFGS"] = "BFGS"
     fmax: float = Field(0.05, gt=0.0, le=10.0, description="force threshold, eV/Å")

@@ -118,6 +118,11 @@ def _resolve_one(engine: Any, config_dir: Path, field: str) -> Any:
     if not isinstance(engine, dict):
         return engine
     name = engine.get("definition")
+    if name is not None and not isinstance(name, str):
+        raise ConfigError(
+            f"{field}.definition: expected the name of an engine definition, e.g. "
+            f"'quantum-espresso' (found {name!r})"
+        )
     if name is not None and engine.get("definition_merged") is True:
         return _read_template(engine, config_dir, field)  # complete: 'definition' is a record
     if name is not None:

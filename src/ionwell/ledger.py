@@ -60,7 +60,7 @@ class Rejection(BaseModel):
     reason: str
 
 
-_LATE_FIELDS = ("job_id", "inputs")
+_LATE_FIELDS = ("job_id", "inputs", "pre_relax")
 #: fields of a decision's wells added after the first release: they enter the hash only when set
 _LATE_SITE_FIELDS = ("boundary",)
 
@@ -74,6 +74,21 @@ def _drop_unset_late_site_fields(body: dict) -> None:
             for name in _LATE_SITE_FIELDS:
                 if isinstance(site, dict) and site.get(name, 0) is None:
                     del site[name]
+
+
+class PreRelaxRecord(BaseModel):
+    """The cheap relaxation before the engine's own (``relax.pre``)."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    method: str = Field(description="e.g. 'GFN2-xTB' (tblite)")
+    code_version: str
+    steps: int
+    converged: bool
+    energy_start: float = Field(description="eV, the method's own energy scale")
+    energy_end: float = Field(description="eV")
+    max_displacement: float = Field(description="largest move of an atom, Å")
+    seconds: float
 
 
 class LedgerRecord(BaseModel):
@@ -106,6 +121,9 @@ class LedgerRecord(BaseModel):
         None,
         description="step 0 only: campaign-relative path -> sha256 of the frozen config and the "
         "host structure, so a hand-edited one is refused on resume and named by verify",
+    )
+    pre_relax: PreRelaxRecord | None = Field(
+        None, description="the cheap relaxation before the engine's (relax.pre), when made"
     )
     hash: str = ""
 

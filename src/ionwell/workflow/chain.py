@@ -71,6 +71,7 @@ from ionwell.host import host_formula_units
 from ionwell.launcher import SoftStopped
 from ionwell.ledger import (
     LedgerRecord,
+    PreRelaxRecord,
     Rejection,
     append_record,
     hash_step_files,
@@ -139,6 +140,9 @@ class Computed(_Marker):
         "retried) and `collect` reports it",
     )
     failed_kind: ErrorKind | None = None
+    pre_relax: PreRelaxRecord | None = Field(
+        None, description="the cheap relaxation before the engine's (relax.pre), when made"
+    )
 
 
 class Collected(_Marker):
@@ -509,6 +513,14 @@ def _compute(paths: CampaignPaths, step: int, round_: int) -> Computed:
         step, len(atoms), prep.guests, campaign.guest.element, prep.charge, campaign.engine.kind,
     )  # fmt: skip
     t0 = time.monotonic()
+    pre = None
+    if campaign.relax.enabled and campaign.relax.pre is not None and prep.movable:
+        # cheap before expensive: the engine's relaxation starts at the tight-binding minimum
+        from ionwell.engines.pre_relax import pre_relax
+
+        atoms, pre = pre_relax(
+            atoms, prep.movable, prep.charge, campaign.relax, sp.root / "pre-relax"
+        )
     relative = f"steps/{step_label(step)}/engine"
     # the scheduler's warning before the time limit (SIGUSR1) stops an external program
     # through its soft-stop files; SoftStopped then leaves the step unfinished (no marker)
@@ -522,6 +534,7 @@ def _compute(paths: CampaignPaths, step: int, round_: int) -> Computed:
         parse_error=done.parse_error,
         job_id=_job_id(sp.engine),
         seconds=round(time.monotonic() - t0, 3),
+        pre_relax=pre,
     )
     _write_marker(sp.marker(round_, "computed"), computed)
     return computed
@@ -772,6 +785,7 @@ def _finish(
         wall_time=round(time.time() - prep.t0, 3),
         job_id=comp.job_id,
         inputs=input_digests(paths) if step == 0 else None,
+        pre_relax=comp.pre_relax,
     )
     rec = append_record(paths.ledger, record, tip=tip)
     append_event(paths, step=step, event="recorded", record=rec.hash)
