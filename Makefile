@@ -25,9 +25,11 @@ test-fast: $(STAMP)
 lint: $(STAMP)
 	$(BIN)/ruff check src tests bench
 	$(BIN)/ruff format --check src tests bench
+	$(BIN)/snakefmt --check rules workflow/Snakefile
 
 format: $(STAMP)
 	$(BIN)/ruff format src tests bench
+	$(BIN)/snakefmt rules workflow/Snakefile
 	$(BIN)/ruff check --fix src tests bench
 
 schema: $(STAMP)

@@ -14,11 +14,11 @@ def iw_summary_input(wildcards):
 
 
 rule summary:
-    localrule: IW_LIGHT_LOCAL
     input:
         iw_summary_input,
     output:
         f"{IW_CDIR}/summary.json",
+    localrule: IW_LIGHT_LOCAL
     run:
         iw_summary.summarize(IW_CDIR)
 
@@ -30,16 +30,16 @@ def iw_reference_input(wildcards):
 if IW_CAMPAIGN.analysis.reference is not None:
 
     rule reference:
-        localrule: IW_CAMPAIGN.analysis.reference.value is not None
         input:
             f"{IW_CDIR}/campaign.yaml",
         output:
             f"{IW_CDIR}/reference.json",
+        localrule: IW_CAMPAIGN.analysis.reference.value is not None
         threads: IW_CAMPAIGN.resources.compute.threads
         resources:
+            **iw_step_resources(IW_CAMPAIGN),
             runtime=lambda wildcards, attempt: iw_walltime(IW_CAMPAIGN, attempt),
             walltime_hms=lambda wildcards, attempt: iw_hms(iw_walltime(IW_CAMPAIGN, attempt)),
-            **iw_step_resources(IW_CAMPAIGN),
         run:
             iw_finish.reference(IW_CDIR)
 
@@ -51,7 +51,6 @@ def iw_settings_input(wildcards):
 
 
 rule analysis:
-    localrule: IW_LIGHT_LOCAL
     input:
         f"{IW_CDIR}/summary.json",
         f"{IW_CDIR}/campaign.yaml",
@@ -59,15 +58,16 @@ rule analysis:
         iw_settings_input,
     output:
         f"{IW_CDIR}/analysis/analysis.json",
+    localrule: IW_LIGHT_LOCAL
     run:
         iw_finish.analyse(IW_CDIR)
 
 
 rule report:
-    localrule: IW_LIGHT_LOCAL
     input:
         f"{IW_CDIR}/analysis/analysis.json",
     output:
         f"{IW_CDIR}/analysis/report.html",
+    localrule: IW_LIGHT_LOCAL
     run:
         iw_finish.report(IW_CDIR, output[0])

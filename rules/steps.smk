@@ -77,21 +77,21 @@ def iw_prepare_input(wildcards):
 
 
 rule setup:
-    localrule: True
     output:
         f"{IW_CDIR}/campaign.yaml",
         f"{IW_CDIR}/host.extxyz",
+    localrule: True
     run:
         iw_setup.setup(IW_CAMPAIGN, IW_CDIR)
 
 
 rule prepare:
-    retries: 0  # a light body fails the same way again: not retried
-    localrule: IW_LIGHT_LOCAL
     input:
         iw_prepare_input,
     output:
         IW_FLOW + ".prepared.json",
+    retries: 0  # a light body fails the same way again: not retried
+    localrule: IW_LIGHT_LOCAL
     run:
         iw_chain.prepare(IW_CDIR, int(wildcards.step), int(wildcards.round))
 
@@ -103,31 +103,31 @@ rule compute:
         IW_FLOW + ".computed.json",
     threads: IW_CAMPAIGN.resources.compute.threads
     resources:
+        **iw_step_resources(IW_CAMPAIGN),
         runtime=lambda wildcards, attempt: iw_walltime(IW_CAMPAIGN, attempt),
         walltime_hms=lambda wildcards, attempt: iw_hms(iw_walltime(IW_CAMPAIGN, attempt)),
-        **iw_step_resources(IW_CAMPAIGN),
     run:
         iw_chain.compute(IW_CDIR, int(wildcards.step), int(wildcards.round))
 
 
 rule collect:
-    retries: 0  # a light body fails the same way again: not retried
-    localrule: IW_LIGHT_LOCAL
     input:
         IW_FLOW + ".computed.json",
     output:
         IW_FLOW + ".collected.json",
+    retries: 0  # a light body fails the same way again: not retried
+    localrule: IW_LIGHT_LOCAL
     run:
         iw_chain.collect(IW_CDIR, int(wildcards.step), int(wildcards.round))
 
 
 checkpoint assess:
-    retries: 0  # a light body fails the same way again: not retried
-    localrule: True
     input:
         IW_FLOW + ".collected.json",
     output:
         IW_FLOW + ".verdict.json",
+    retries: 0  # a light body fails the same way again: not retried
+    localrule: True
     run:
         iw_chain.assess(IW_CDIR, int(wildcards.step), int(wildcards.round))
 
@@ -139,9 +139,9 @@ rule screen:
         IW_FLOW + ".screen-{candidate}.json",
     threads: IW_CAMPAIGN.resources.compute.threads
     resources:
+        **iw_step_resources(IW_CAMPAIGN),
         runtime=lambda wildcards, attempt: iw_walltime(IW_CAMPAIGN, attempt),
         walltime_hms=lambda wildcards, attempt: iw_hms(iw_walltime(IW_CAMPAIGN, attempt)),
-        **iw_step_resources(IW_CAMPAIGN),
     run:
         iw_chain.screen(
             IW_CDIR, int(wildcards.step), int(wildcards.round), int(wildcards.candidate)
@@ -157,11 +157,11 @@ def iw_screened(wildcards):
 
 
 checkpoint decide:
-    retries: 0  # a light body fails the same way again: not retried
-    localrule: True
     input:
         iw_screened,
     output:
         IW_FLOW + ".decided.json",
+    retries: 0  # a light body fails the same way again: not retried
+    localrule: True
     run:
         iw_chain.decide(IW_CDIR, int(wildcards.step), int(wildcards.round))

@@ -146,7 +146,7 @@ def _cluster() -> Atoms:
 def _run(atoms, workdir, cfg, relax=NO_RELAX, **ctx):
     eng = AseEngine(cfg, relax)
     eng.prepare(atoms, workdir, ComputeContext(step=ctx.pop("step", 0), **ctx))
-    assert eng.argv(workdir) is None
+    assert not eng.external
     eng.run(workdir)
     return eng.collect(workdir)
 

@@ -45,7 +45,7 @@ NO_RELAX = RelaxConfig(enabled=False)
 def _run(atoms, workdir, cfg=FAST, relax=NO_RELAX, **ctx):
     eng = PyscfEngine(cfg, relax)
     eng.prepare(atoms, workdir, ComputeContext(step=ctx.pop("step", 0), **ctx))
-    assert eng.argv(workdir) is None
+    assert not eng.external
     eng.run(workdir)
     return eng.collect(workdir)
 
@@ -87,7 +87,7 @@ def test_prepare_writes_inputs(tmp_path):
     back = read(tmp_path / INPUT)
     assert back.get_chemical_symbols() == ["O", "H", "H"]
     assert ComputeContext.model_validate_json((tmp_path / CONTEXT).read_text()) == ctx
-    assert eng.argv(tmp_path) is None
+    assert not eng.external
     assert eng.name == "pyscf"
 
 

@@ -37,7 +37,7 @@ NO_RELAX = RelaxConfig(enabled=False)
 def _run(atoms, workdir, cfg=FAST, relax=NO_RELAX, **ctx):
     eng = TbliteEngine(cfg, relax)
     eng.prepare(atoms, workdir, ComputeContext(step=ctx.pop("step", 0), **ctx))
-    assert eng.argv(workdir) is None
+    assert not eng.external
     eng.run(workdir)
     return eng.collect(workdir)
 

@@ -2,9 +2,9 @@
 
 An engine says *what* to compute and how to read it; a launcher says how to start it on a machine.
 
+    external: bool                               a separate program (True) or in-process
     prepare(atoms, workdir, context) -> None     write inputs into ``workdir``
-    argv(workdir, launcher) -> list[str] | None  command to run, or None for in-process engines
-    run(workdir) -> None                         in-process engines only
+    launch(workdir, launcher) -> float           compute (external: through the launcher)
     collect(workdir) -> StepResult               parse; raise EngineOutputError(file + reason)
 
 Units in a :class:`StepResult`: energies eV, forces eV/Å, lengths Å, potential volts.
@@ -13,7 +13,7 @@ Units in a :class:`StepResult`: energies eV, forces eV/Å, lengths Å, potential
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Protocol
+from typing import Any, Protocol
 
 import numpy as np
 from ase import Atoms
@@ -96,14 +96,15 @@ class StepResult(BaseModel):
 
 
 class Engine(Protocol):
-    """The adapter every engine kind implements."""
+    """The adapter every engine kind implements: ``prepare`` writes the inputs into the engine
+    folder, ``launch`` computes them (an external program through the launcher when
+    ``external``, else in this process, the launcher unused), ``collect`` reads the outputs."""
 
     name: str
+    external: bool
 
     def prepare(self, atoms: Atoms, workdir: Path, context: ComputeContext) -> None: ...
 
-    def argv(self, workdir: Path, launcher: object | None = None) -> list[str] | None: ...
-
-    def run(self, workdir: Path) -> None: ...
+    def launch(self, workdir: Path, launcher: Any) -> float: ...
 
     def collect(self, workdir: Path) -> tuple[StepResult, Grid | None]: ...

@@ -152,6 +152,8 @@ def _atom_count(engine_dir: Path) -> int | None:
 class CommandEngine:
     """An external program run through the launcher (see the module docstring)."""
 
+    external = True  # a separate program, started by launch() through the launcher
+
     def __init__(self, engine_config: CommandEngineConfig, relax: Any = None) -> None:
         self.cfg = engine_config
         self.relax = relax
@@ -326,11 +328,6 @@ class CommandEngine:
                     shutil.copy2(p, target)
                     copied.append(p.name)
         return copied
-
-    def argv(self, workdir: Path, launcher: object | None = None) -> list[str] | None:
-        """The program's argv as configured; its placeholders are filled by the launcher
-        (:meth:`launch`), which also adds the launcher's prefix."""
-        return list(self.cfg.argv)
 
     def commands(self) -> list[list[str]]:
         """Every command of the compute, in order: ``argv``, then each of ``then``."""

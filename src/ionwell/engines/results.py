@@ -17,6 +17,7 @@ from __future__ import annotations
 import json
 import logging
 import math
+import time
 from collections.abc import Iterable
 from pathlib import Path
 
@@ -198,14 +199,16 @@ def collect_outputs(workdir: Path, code: str = "engine") -> tuple[StepResult, Gr
 
 
 class InProcessEngine:
-    """What the in-process engines share: construction, ``argv`` (None: run in-process),
-    ``prepare`` for a finite cluster, and ``collect`` of ``output.json`` + the map.
+    """What the in-process engines share: construction, ``launch`` in this process (not
+    ``external``), ``prepare`` for a finite cluster, and ``collect`` of ``output.json`` + the
+    map.
 
     Subclasses set :attr:`name` and :attr:`code` and implement ``run``.
     """
 
     name = "engine"
     code = "engine"  # the program's name in messages about its outputs
+    external = False  # computes in this process
 
     def __init__(self, engine_config, relax) -> None:
         self.cfg = engine_config
@@ -219,9 +222,15 @@ class InProcessEngine:
             )
         write_inputs(atoms, workdir, context, stale=("timings.json",))
 
-    def argv(self, workdir: Path, launcher: object | None = None) -> list[str] | None:
-        """None: this engine runs in-process through ``run``."""
-        return None
+    def launch(self, workdir: Path, launcher: object | None = None) -> float:
+        """Compute in this process (``run``; the launcher is for external programs); the
+        seconds it took."""
+        t0 = time.perf_counter()
+        self.run(workdir)
+        return time.perf_counter() - t0
+
+    def run(self, workdir: Path) -> None:  # pragma: no cover - every subclass implements it
+        raise NotImplementedError
 
     def collect(self, workdir: Path) -> tuple[StepResult, Grid | None]:
         """Read ``output.json`` and ``potential.npz``; EngineOutputError names file + reason."""

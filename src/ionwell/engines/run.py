@@ -107,10 +107,8 @@ def execute(campaign, workdir: Path, step: int = 0, relative: str | None = None)
         from ionwell.remote import execute_remote
 
         execute_remote(campaign, workdir, relative, step)
-    elif engine.argv(workdir, None) is not None:
-        engine.launch(workdir, campaign.launcher)
     else:
-        engine.run(workdir)
+        engine.launch(workdir, campaign.launcher)
 
 
 def run_engine(

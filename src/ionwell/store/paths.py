@@ -28,6 +28,8 @@ from pathlib import Path
 STEP_DIGITS = 4
 
 #: files of a step folder that are not part of its ledger record
+# (".running" is no longer written: versions before the rule chain marked a step in progress
+# with it; it stays here so that their step folders still verify)
 UNRECORDED_NAMES = frozenset({"status.json", "error.json", ".running"})
 #: sub-folders of a step folder that are not part of its ledger record
 UNRECORDED_DIRS = frozenset({"flow"})
