@@ -37,6 +37,7 @@ pyscf = pytest.importorskip("pyscf")
 FAST = PyscfEngineConfig(
     xc="lda,vwn",
     basis="sto-3g",
+    warm_start=True,  # the warm start's mechanics are tested here (off by default)
     potential_grid=PotentialGridConfig(spacing=0.4, margin=2.5),
 )
 NO_RELAX = RelaxConfig(enabled=False)

@@ -205,7 +205,12 @@ class PyscfEngineConfig(_Model):
     conv_tol: float = Field(1e-8, gt=0.0, lt=1e-2, description="SCF energy tolerance, hartree")
     level_shift: float = Field(0.0, ge=0.0, description="SCF level shift, hartree")
     smearing: float = Field(0.0, ge=0.0, description="Fermi smearing width, eV (0: none)")
-    warm_start: bool = Field(True, description="start the SCF from the previous step's density")
+    # off by default: measured with bench/warm_start.py (benzene bilayer + Li, LDA/STO-3G) it
+    # saved 0-25 % of the SCF iterations, and once (neutral Li, step 2) it converged to a
+    # solution 0.60 eV above the one a fresh guess reached
+    warm_start: bool = Field(
+        False, description="start the SCF from the previous step's density (see the caution)"
+    )
     density_fit: bool = Field(True, description="density-fit the Coulomb term (faster gradients)")
     grid_level: int | None = Field(
         None, ge=0, le=9, description="PySCF integration grid level, 0-9 (default: PySCF's, 3)"
