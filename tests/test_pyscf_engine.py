@@ -353,6 +353,7 @@ def test_collect_nan_energy_and_missing_grid(tmp_path):
 CATION_PI = PyscfEngineConfig(
     xc="lda,vwn",
     basis="6-31g",
+    warm_start=True,  # step 1 starts from step 0's density (checked below; off by default)
     potential_grid=PotentialGridConfig(spacing=0.25, margin=3.0),
 )
 
