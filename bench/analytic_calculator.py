@@ -13,7 +13,7 @@ plus a short-ranged repulsion::
 (``k`` = 14.3996 eV Å / e^2). Energy and forces are exact for this model, vectorised over all
 pairs (a few ms at 500 atoms).
 
-``get_electrostatic_potential()`` returns an :class:`ionwell.grid.Grid` (volts, felt by a
+``get_electrostatic_potential()`` returns an :class:`ionwell.science.grid.Grid` (volts, felt by a
 positive charge) on a box around the atoms with ``margin`` Å on each side, its spacing chosen
 so the box holds about ``points`` points. The map is the sum of the atoms' screened-Coulomb
 potentials ``k q_i exp(-r/lam) / sqrt(r^2 + a^2)``, evaluated as a convolution: the charges are
@@ -36,7 +36,7 @@ import numpy as np
 import scipy.fft
 from ase.calculators.calculator import Calculator, all_changes
 
-from ionwell.grid import Grid
+from ionwell.science.grid import Grid
 
 __all__ = ["AnalyticCalculator", "COULOMB"]
 

@@ -1,10 +1,10 @@
-"""Cost of the per-step checks (ionwell.checks.step_findings) as guests accumulate.
+"""Cost of the per-step checks (ionwell.science.checks.step_findings) as guests accumulate.
 
     python bench/checks_cost.py [--repeats 5] [--seed 0] [--steps 1 100 400]
 
 Host: a 4-layer AB flake of 4 hexagon shells per sheet (C384H96, 480 atoms). A synthetic series
 adds one Li per step at random admissible positions (fixed seed): at least the default exclusion
-radius (ionwell.placement.default_exclusion) from every atom, guests included, and within
+radius (ionwell.science.placement.default_exclusion) from every atom, guests included, and within
 ``placement.within`` (3 Å) of a host atom. At each step the checks run with the default
 ChecksConfig (envelope ``within + 1``), on three paths:
 
@@ -26,10 +26,10 @@ import numpy as np
 from ase import Atoms
 from scipy.spatial import cKDTree
 
-from ionwell.checks import host_facts, step_findings
-from ionwell.config import ChecksConfig, FlakeBuilder, PlacementConfig
-from ionwell.host import build_flake
-from ionwell.placement import default_exclusion
+from ionwell.config.campaign import ChecksConfig, FlakeBuilder, PlacementConfig
+from ionwell.science.checks import host_facts, step_findings
+from ionwell.science.host import build_flake
+from ionwell.science.placement import default_exclusion
 
 GUEST = "Li"
 

@@ -17,10 +17,10 @@ import sys
 import tempfile
 from pathlib import Path
 
-from ionwell.config import parse_campaign
+from ionwell.config.campaign import parse_campaign
 from ionwell.engines import get_engine
 from ionwell.engines.base import ComputeContext
-from ionwell.host import build_flake
+from ionwell.science.host import build_flake
 
 
 def main() -> None:

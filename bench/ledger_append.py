@@ -21,9 +21,10 @@ from pathlib import Path
 
 from pydantic import ValidationError
 
-from ionwell.campaign import CampaignPaths, atomic_write_bytes
 from ionwell.errors import LedgerError
-from ionwell.ledger import (
+from ionwell.science.placement import Decision, Site
+from ionwell.store.campaign import CampaignPaths, atomic_write_bytes
+from ionwell.store.ledger import (
     GENESIS,
     LedgerRecord,
     append_record,
@@ -31,7 +32,6 @@ from ionwell.ledger import (
     last_record,
     read_ledger,
 )
-from ionwell.placement import Decision, Site
 
 # ---------------------------------------------------------------------------------------------
 # THE OLD ALGORITHM (ionwell before the append-only ledger), copied here for comparison only:

@@ -120,7 +120,11 @@ def ionwell_argv() -> list[str]:
     script = Path(sys.executable).parent / "ionwell"
     if script.is_file() and os.access(script, os.X_OK):
         return [str(script)]
-    return [sys.executable, "-c", "import sys; from ionwell.cli import main; sys.exit(main())"]
+    return [
+        sys.executable,
+        "-c",
+        "import sys; from ionwell.cli.commands import main; sys.exit(main())",
+    ]
 
 
 def which_ionwell(env: dict[str, str]) -> dict[str, str]:

@@ -26,7 +26,7 @@ from pathlib import Path
 import yaml
 from ase.io import read
 
-from ionwell.config import load_campaign
+from ionwell.config.campaign import load_campaign
 from ionwell.engines import get_engine
 from ionwell.engines.base import ComputeContext
 
@@ -45,7 +45,7 @@ def _campaign(root: Path, mode: str, args: argparse.Namespace) -> Path:
     path = root / f"warm-{mode}.yaml"
     path.write_text(yaml.safe_dump(cfg))
     out = subprocess.run(
-        [sys.executable, "-m", "ionwell.cli", "run", str(path), "--root", str(root)],
+        [sys.executable, "-m", "ionwell.cli.commands", "run", str(path), "--root", str(root)],
         capture_output=True,
         text=True,
     )

@@ -5,9 +5,9 @@
 # decision. Only `compute` and `screen` carry scheduler resources; `assess` and `decide` append
 # the ledger and always run on the controller.
 
-from ionwell.resources import hms as iw_hms
-from ionwell.resources import step_resources as iw_step_resources
-from ionwell.resources import walltime_minutes as iw_walltime
+from ionwell.workflow.resources import hms as iw_hms
+from ionwell.workflow.resources import step_resources as iw_step_resources
+from ionwell.workflow.resources import walltime_minutes as iw_walltime
 from ionwell.store.paths import step_label as iw_step_label
 from ionwell.workflow import chain as iw_chain
 from ionwell.workflow import setup as iw_setup

@@ -1,11 +1,11 @@
-"""Shared fixtures. The cluster services live in ``tests/cluster.py``."""
+"""Shared fixtures. The cluster services live in ``tests/services.py``."""
 
 from __future__ import annotations
 
 from collections.abc import Iterator
 
 import pytest
-from cluster import ClusterUnavailable, SlurmCluster, Sshd, cluster_skip_reason, sshd_skip_reason
+from services import ClusterUnavailable, SlurmCluster, Sshd, cluster_skip_reason, sshd_skip_reason
 
 
 @pytest.fixture(scope="session")

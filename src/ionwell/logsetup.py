@@ -10,7 +10,7 @@ from __future__ import annotations
 import logging
 import sys
 
-from ionwell.campaign import CampaignPaths
+from ionwell.store.campaign import CampaignPaths
 
 _FORMAT = "%(asctime)s ionwell | %(message)s"
 _configured: set[str] = set()

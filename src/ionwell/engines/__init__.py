@@ -8,7 +8,7 @@ __all__ = ["Engine", "StepResult", "get_engine"]
 
 
 def get_engine(campaign) -> Engine:
-    """Build the engine adapter for a :class:`ionwell.config.Campaign`'s engine and relaxation."""
+    """Build the engine adapter for a :class:`ionwell.config.campaign.Campaign`'s engine and relaxation."""
     kind = campaign.engine.kind
     if kind == "pyscf":
         from ionwell.engines.pyscf_engine import PyscfEngine

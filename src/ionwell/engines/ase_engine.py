@@ -36,21 +36,21 @@ The potential map, in order of preference:
 
 1. ``calc.get_electrostatic_potential()`` when the calculator has it. Accepted returns:
 
-   * an :class:`ionwell.grid.Grid` — taken as it is (volts, felt by a positive charge);
+   * an :class:`ionwell.science.grid.Grid` — taken as it is (volts, felt by a positive charge);
    * a 3-D array ``(n0, n1, n2)`` — ASE's convention for grid-based calculators (GPAW):
      values in **eV** on a grid that spans the unit cell ``atoms.cell``, point ``(i, j, k)`` at
      ``i/n0 a + j/n1 b + k/n2 c`` (origin at the cell's corner), periodic along the periodic
      axes of the atoms. The sign follows ``engine.potential_sign``: ``electron`` (default,
      GPAW's: the potential energy of an electron, so the map is its negative in volts),
      ``potential`` (already the potential felt by a positive charge, volts) or ``auto``
-     (decided from the values near the nuclei, :func:`ionwell.grid.detect_sign`). A
+     (decided from the values near the nuclei, :func:`ionwell.science.grid.detect_sign`). A
      calculator whose grid is laid out otherwise (e.g. one that leaves out the boundary points
      of a non-periodic axis) should return a Grid instead, or write a file.
 
    The calculator may name its potential's model in a string attribute ``potential_model``
    (recorded as :attr:`StepResult.potential_model`; default ``"exact"``).
 2. ``engine.potential`` — a file the calculator wrote in the engine folder (a glob; the newest
-   match counts), read with :func:`ionwell.volumetric.read_potential` (format, unit, sign).
+   match counts), read with :func:`ionwell.io.maps.read_potential` (format, unit, sign).
    Matches left over from an earlier attempt are removed by :meth:`AseEngine.prepare`.
 3. Otherwise the run fails with an EngineOutputError saying so.
 
@@ -73,6 +73,7 @@ import numpy as np
 from ase import Atoms
 
 from ionwell.engines.base import ComputeContext, StepResult
+from ionwell.engines.launcher import ScfNotConverged
 from ionwell.engines.relax import relax_atoms
 from ionwell.engines.results import (
     CONTEXT,
@@ -84,8 +85,7 @@ from ionwell.engines.results import (
     write_output,
 )
 from ionwell.errors import ConfigError, EngineOutputError, GridError
-from ionwell.grid import Grid, orient, save_npz
-from ionwell.launcher import ScfNotConverged
+from ionwell.science.grid import Grid, orient, save_npz
 
 __all__ = ["AseEngine", "grid_from_calculator", "load_calculator", "load_calculator_class"]
 
@@ -199,7 +199,7 @@ def grid_from_calculator(value: Any, atoms: Atoms, sign: str) -> Grid:
     if abs(np.linalg.det(cell)) < 1e-9:
         raise EngineOutputError(
             f"{what} returned an array but the structure has no unit cell to place it on; "
-            "give the atoms a cell or have the calculator return an ionwell.grid.Grid"
+            "give the atoms a cell or have the calculator return an ionwell.science.grid.Grid"
         )
     axes = cell / np.asarray(values.shape, dtype=float)[:, None]
     # eV per elementary charge is numerically volts; the sign is settled by `orient`
@@ -412,7 +412,7 @@ class AseEngine(InProcessEngine):
                 "(no get_electrostatic_potential()) and no 'engine.potential' file is "
                 "configured; set engine.potential to the map file the calculator writes"
             )
-        from ionwell.volumetric import read_potential
+        from ionwell.io.maps import read_potential
 
         spec = cfg.potential
         matches = sorted(

@@ -19,7 +19,7 @@ import numpy as np
 from ase import Atoms
 from pydantic import BaseModel, ConfigDict, Field
 
-from ionwell.grid import Grid
+from ionwell.science.grid import Grid
 
 
 class ComputeContext(BaseModel):

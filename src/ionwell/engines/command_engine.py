@@ -48,8 +48,7 @@ import numpy as np
 from ase import Atoms
 from ase.io import read, write
 
-from ionwell.campaign import atomic_write_json
-from ionwell.engine_config import (
+from ionwell.config.engines import (
     ENERGY_UNITS,
     CellSpec,
     ChargesSpec,
@@ -60,10 +59,11 @@ from ionwell.engine_config import (
     ValueSpec,
 )
 from ionwell.engines.base import ComputeContext, StepResult
+from ionwell.engines.launcher import EngineRunError, ScfNotConverged, SoftStopped, fill, run_program
 from ionwell.engines.results import CONTEXT, INPUT, read_inputs, write_inputs
 from ionwell.errors import ConfigError, EngineOutputError, IonwellError
-from ionwell.grid import Grid
-from ionwell.launcher import EngineRunError, ScfNotConverged, SoftStopped, fill, run_program
+from ionwell.science.grid import Grid
+from ionwell.store.campaign import atomic_write_json
 
 __all__ = ["CommandEngine", "needs_box", "program_frame", "structure_block"]
 
@@ -526,7 +526,7 @@ class CommandEngine:
 
     def collect(self, workdir: Path) -> tuple[StepResult, Grid | None]:
         """Read the program's outputs (see the module docstring for the errors raised)."""
-        from ionwell.volumetric import read_potential
+        from ionwell.io.maps import read_potential
 
         workdir = Path(workdir)
         where = self._step(workdir)

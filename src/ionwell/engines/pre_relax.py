@@ -4,7 +4,7 @@
 tight-binding minimum; the engine's own relaxation (``relax``) finishes from there, so its
 expensive force evaluations start near a minimum. Files, in the folder given
 (``steps/NNNN/pre-relax``): ``relax.traj`` and ``relax.log`` of the optimizer, and
-``pre-relax.json`` (the :class:`ionwell.ledger.PreRelaxRecord`, also in the step's ledger
+``pre-relax.json`` (the :class:`ionwell.store.ledger.PreRelaxRecord`, also in the step's ledger
 record). Units: Å, eV, eV/Å.
 """
 
@@ -19,9 +19,9 @@ from pathlib import Path
 import numpy as np
 from ase import Atoms
 
-from ionwell.config import RelaxConfig
-from ionwell.engine_config import TbliteEngineConfig
-from ionwell.ledger import PreRelaxRecord
+from ionwell.config.campaign import RelaxConfig
+from ionwell.config.engines import TbliteEngineConfig
+from ionwell.store.ledger import PreRelaxRecord
 
 __all__ = ["RECORD", "pre_relax"]
 

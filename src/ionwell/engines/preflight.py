@@ -19,8 +19,8 @@ import numpy as np
 from ase import Atoms
 from ase.data import atomic_numbers
 
-from ionwell.config import Campaign
-from ionwell.engine_config import PyscfEngineConfig, TbliteEngineConfig
+from ionwell.config.campaign import Campaign
+from ionwell.config.engines import PyscfEngineConfig, TbliteEngineConfig
 from ionwell.errors import ConfigError
 
 log = logging.getLogger(__name__)

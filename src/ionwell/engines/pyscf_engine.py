@@ -9,7 +9,7 @@ Files in the engine folder of a step:
 ``relax.log``      ASE optimizer log
 ``pyscf.chk``      PySCF checkpoint of the final SCF (molecule, orbitals, occupations); the
                    next step's warm start reads it
-``potential.npz``  potential map, volts, float32 (:func:`ionwell.grid.save_npz`)
+``potential.npz``  potential map, volts, float32 (:func:`ionwell.science.grid.save_npz`)
 ``output.json``    every :class:`~ionwell.engines.base.StepResult` field, written last
 ``timings.json``   wall times of the stages and the SCF solvers used (diagnostics only)
 =================  =====================================================================
@@ -30,7 +30,7 @@ Science in brief:
   either exact (one-electron integrals over blocks of grid points, contracted with the density
   matrix) or ``fitted`` (density fitted to an auxiliary basis, evaluated everywhere, then the
   deepest points and every local minimum re-evaluated exactly).
-* atomic charges of the final density in four schemes (:mod:`ionwell.charge_schemes`):
+* atomic charges of the final density in four schemes (:mod:`ionwell.science.charges`):
   Mulliken (also ``StepResult.charges``, ``charge_scheme="mulliken"``), Löwdin, meta-Löwdin and
   intrinsic atomic orbitals (IAO), all in ``StepResult.charge_sets``.
 
@@ -52,8 +52,7 @@ from ase import Atoms
 from ase.calculators.calculator import Calculator, all_changes
 from ase.units import Bohr, Hartree
 
-from ionwell.charge_schemes import compute_charge_sets, occupied_orbitals
-from ionwell.config import PyscfEngineConfig
+from ionwell.config.campaign import PyscfEngineConfig
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.engines.relax import relax_atoms
 from ionwell.engines.results import (
@@ -67,7 +66,8 @@ from ionwell.engines.results import (
 )
 from ionwell.engines.results import atomic_write as _atomic_write
 from ionwell.errors import ConfigError
-from ionwell.grid import Grid, save_npz
+from ionwell.science.charges import compute_charge_sets, occupied_orbitals
+from ionwell.science.grid import Grid, save_npz
 
 __all__ = [
     "CONTEXT",
@@ -669,10 +669,10 @@ def _orbitals(mf) -> tuple[list[list[float]], list[list[float]], float | None, f
 
 def _charge_sets(mf, dm: np.ndarray) -> dict[str, list[float]]:
     """Atomic charges (e) of the converged density ``dm`` in every scheme of
-    :mod:`ionwell.charge_schemes` (Mulliken, Löwdin, meta-Löwdin, IAO).
+    :mod:`ionwell.science.charges` (Mulliken, Löwdin, meta-Löwdin, IAO).
 
     The IAOs are built from the orbitals occupied above
-    :data:`~ionwell.charge_schemes.OCCUPIED_THRESHOLD` (fractional, smeared levels included),
+    :data:`~ionwell.science.charges.OCCUPIED_THRESHOLD` (fractional, smeared levels included),
     per spin for UKS. Mulliken errors propagate; another scheme that fails is logged and left
     out. Matrix operations on the final SCF only: no SCF is rerun.
     """

@@ -17,7 +17,7 @@ from ase import Atoms
 from ase.calculators.calculator import BaseCalculator
 from ase.constraints import FixAtoms
 
-from ionwell.config import RelaxConfig
+from ionwell.config.campaign import RelaxConfig
 
 __all__ = ["GUEST_HESSIAN", "RELAX_LOG", "TRAJECTORY", "relax_atoms"]
 

@@ -5,7 +5,7 @@
 ``context.json``   the :class:`~ionwell.engines.base.ComputeContext`
 ``output.npz``     positions (Å) and forces (eV/Å), float64, binary
 ``output.json``    every other :class:`~ionwell.engines.base.StepResult` field, written last
-``potential.npz``  potential map, volts, float32 (:func:`ionwell.grid.save_npz`)
+``potential.npz``  potential map, volts, float32 (:func:`ionwell.science.grid.save_npz`)
 =================  =====================================================================
 
 Writes are atomic (temporary name, fsync, rename); :func:`collect_outputs` raises
@@ -25,11 +25,11 @@ import numpy as np
 from ase import Atoms
 from pydantic import ValidationError
 
-from ionwell.campaign import atomic_publish
-from ionwell.campaign import atomic_write_text as atomic_write
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.errors import EngineOutputError, GridError
-from ionwell.grid import Grid, load_npz
+from ionwell.science.grid import Grid, load_npz
+from ionwell.store.campaign import atomic_publish
+from ionwell.store.campaign import atomic_write_text as atomic_write
 
 log = logging.getLogger("ionwell.engines")
 

@@ -15,9 +15,9 @@ from pydantic import BaseModel, ConfigDict
 
 from ionwell.engines import get_engine
 from ionwell.engines.base import ComputeContext, StepResult
+from ionwell.engines.launcher import ScfNotConverged
 from ionwell.errors import EngineOutputError
-from ionwell.grid import Grid
-from ionwell.launcher import ScfNotConverged
+from ionwell.science.grid import Grid
 
 log = logging.getLogger(__name__)
 
@@ -104,7 +104,7 @@ def execute(campaign, workdir: Path, step: int = 0, relative: str | None = None)
     in-process."""
     engine = get_engine(campaign)
     if getattr(campaign, "remote", None) is not None and relative is not None:
-        from ionwell.remote import execute_remote
+        from ionwell.cluster.remote import execute_remote
 
         execute_remote(campaign, workdir, relative, step)
     else:

@@ -3,7 +3,7 @@ program's own soft stop.
 
 A compute job asks its scheduler for :data:`STOP_SIGNAL` (SIGUSR1) some seconds before its time
 limit (``resources.compute.stop_before``; SLURM ``--signal=USR1@<seconds>``, see
-:func:`ionwell.resources.step_resources`). SLURM sends it to every process of the job's steps:
+:func:`ionwell.workflow.resources.step_resources`). SLURM sends it to every process of the job's steps:
 the Snakemake process that runs the ``compute`` body (the SLURM executor starts it with
 ``srun``, as step 0 of the job) and the program it started. Then:
 
@@ -18,7 +18,7 @@ the Snakemake process that runs the ``compute`` body (the SLURM executor starts 
   file(s) in its working folder (the definition's ``soft_stop.files``: ``<prefix>.EXIT`` for
   Quantum ESPRESSO, ``EXIT`` for CP2K), the program's own documented way to stop cleanly and
   write its restart files; when it has stopped,
-  :class:`ionwell.launcher.SoftStopped` is raised, so the attempt
+  :class:`ionwell.engines.launcher.SoftStopped` is raised, so the attempt
   is recorded as not finished (``error.json``, a ``stopped`` event, no ``computed`` marker, no
   ledger record) and the job exits non-zero;
 - Snakemake retries the job (``retries`` in the profile) with ``walltime_factor`` times more

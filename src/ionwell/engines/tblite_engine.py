@@ -7,7 +7,7 @@ Files in the engine folder of a step (as the pyscf engine, see :mod:`ionwell.eng
 ``context.json``   the :class:`~ionwell.engines.base.ComputeContext` (charge, spin, movable)
 ``relax.traj``     ASE optimizer trajectory (only when a relaxation ran)
 ``relax.log``      ASE optimizer log
-``potential.npz``  potential map, volts, float32 (:func:`ionwell.grid.save_npz`)
+``potential.npz``  potential map, volts, float32 (:func:`ionwell.science.grid.save_npz`)
 ``output.json``    every :class:`~ionwell.engines.base.StepResult` field, written last
 ``timings.json``   wall times and counts of the stages (diagnostics only)
 =================  =====================================================================
@@ -35,7 +35,7 @@ uses, read from tblite's ``xtbml_xyz`` post-processing; GFN1-xTB reports them to
     V(r) = k Σ_A [ q_A erf(d/a_A) / d  +  (μ_A · d⃗) g(d/a_A) / d³ ],  d⃗ = r − R_A,
     g(x) = erf(x) − (2x/√π) exp(−x²),  k = Hartree·Bohr = 14.3996 V·Å/e (ase.units),
 
-in volts, the potential felt by a positive test charge (:mod:`ionwell.grid`'s convention). The
+in volts, the potential felt by a positive test charge (:mod:`ionwell.science.grid`'s convention). The
 widths are the elements' covalent radii (``ase.data.covalent_radii``, Cordero et al. 2008), a
 choice of this module (Gaussian charges of about atomic size, as in charge-equilibration
 models): beyond about 2.5 widths from a nucleus the terms are those of point multipoles to
@@ -67,7 +67,7 @@ from ase.calculators.calculator import Calculator, all_changes
 from ase.data import covalent_radii
 from ase.units import Bohr, Hartree, kB
 
-from ionwell.engine_config import TbliteEngineConfig
+from ionwell.config.engines import TbliteEngineConfig
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.engines.pyscf_engine import grid_box
 from ionwell.engines.relax import relax_atoms
@@ -81,7 +81,7 @@ from ionwell.engines.results import (
     write_output,
 )
 from ionwell.errors import ConfigError, EngineOutputError
-from ionwell.grid import Grid, save_npz
+from ionwell.science.grid import Grid, save_npz
 
 __all__ = [
     "COULOMB",

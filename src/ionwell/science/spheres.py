@@ -27,7 +27,7 @@ import math
 import numpy as np
 from scipy.spatial import cKDTree
 
-from ionwell.grid import Grid, fractional_index
+from ionwell.science.grid import Grid, fractional_index
 
 __all__ = ["line_cost", "mask_by_blocks", "mask_by_lines", "union_mask"]
 

@@ -16,10 +16,10 @@ import numpy as np
 from ase import Atoms
 from pydantic import BaseModel, ConfigDict, Field
 
-from ionwell import placement
-from ionwell.checks import Finding
-from ionwell.config import Campaign, RelaxConfig, StopConfig
-from ionwell.grid import Grid
+from ionwell.config.campaign import Campaign, RelaxConfig, StopConfig
+from ionwell.science import placement
+from ionwell.science.checks import Finding
+from ionwell.science.grid import Grid
 
 __all__ = [
     "Retry",
@@ -103,7 +103,7 @@ def after_checks(
     ``round_`` counts the rejections already made in this step, ``placed`` are the sites this
     round computed, ``rejected`` those struck out before, ``previous`` the previous step's
     decision (its candidates are the wells to fall back on, in depth order, keeping the
-    separation: :func:`ionwell.placement.next_untried`). ``periodic`` is a grid of the previous
+    separation: :func:`ionwell.science.placement.next_untried`). ``periodic`` is a grid of the previous
     step when the host is periodic (the separation then uses the minimum image). None: no retry
     (no error, the remedy is off, the rounds are used up, nothing new was placed, or no untried
     well is left); the checks then decide the step as they stand.

@@ -18,8 +18,8 @@ from pathlib import Path
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
-from ionwell.campaign import CampaignPaths
 from ionwell.errors import LedgerError
+from ionwell.store.campaign import CampaignPaths
 
 __all__ = ["AMENDABLE", "Amendment", "append_amendment", "read_amendments"]
 

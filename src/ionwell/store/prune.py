@@ -17,8 +17,8 @@ from pathlib import Path
 
 from pydantic import BaseModel
 
-from ionwell.campaign import CampaignPaths, atomic_write_json
-from ionwell.ledger import read_ledger
+from ionwell.store.campaign import CampaignPaths, atomic_write_json
+from ionwell.store.ledger import read_ledger
 from ionwell.store.paths import StepPaths
 
 __all__ = ["MAP_SUFFIXES", "PRUNED", "PruneReport", "prune", "pruned_files"]

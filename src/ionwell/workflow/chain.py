@@ -43,19 +43,10 @@ from ase.io import read
 from pydantic import BaseModel, ConfigDict, Field
 
 import ionwell
-from ionwell import checks, grid, placement
-from ionwell.campaign import (
-    CampaignPaths,
-    append_event,
-    atomic_publish,
-    atomic_write_extxyz,
-    atomic_write_json,
-    atomic_write_text,
-    load_frozen,
-)
-from ionwell.config import Campaign
+from ionwell.config.campaign import Campaign
 from ionwell.engines import get_engine, soft_stop
 from ionwell.engines.base import ComputeContext, StepResult
+from ionwell.engines.launcher import SoftStopped
 from ionwell.engines.results import INPUT as ENGINE_INPUT
 from ionwell.engines.results import POTENTIAL as ENGINE_MAP
 from ionwell.engines.run import run_engine
@@ -67,9 +58,19 @@ from ionwell.errors import (
     describe_exception,
     error_kind,
 )
-from ionwell.host import host_formula_units
-from ionwell.launcher import SoftStopped
-from ionwell.ledger import (
+from ionwell.science import checks, grid, placement
+from ionwell.science import step as decide_step
+from ionwell.science.host import host_formula_units
+from ionwell.store.campaign import (
+    CampaignPaths,
+    append_event,
+    atomic_publish,
+    atomic_write_extxyz,
+    atomic_write_json,
+    atomic_write_text,
+    load_frozen,
+)
+from ionwell.store.ledger import (
     LedgerRecord,
     PreRelaxRecord,
     Rejection,
@@ -81,7 +82,6 @@ from ionwell.ledger import (
     sha256_file,
     sync_mirror,
 )
-from ionwell.science import step as decide_step
 from ionwell.store.paths import StepPaths, step_label
 from ionwell.workflow.plan import is_stopped
 

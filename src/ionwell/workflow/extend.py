@@ -5,7 +5,7 @@ its stop rule had ended.
 ``ionwell run`` calls these under the controller lock. A campaign that stopped *only* because of
 its stop rule (no failed check, no placement decision made) and whose amended stop rule lets it
 go on is extended by the placement decision its last step did not make: the same pure
-:func:`ionwell.placement.decide` on that step's recorded map and structure, written as
+:func:`ionwell.science.placement.decide` on that step's recorded map and structure, written as
 ``steps/N+1/handover.json`` (hashed into step N+1's record, re-derived by ``ionwell replay``).
 """
 
@@ -15,14 +15,14 @@ import logging
 
 from ase.io import read
 
-from ionwell.campaign import CampaignPaths, atomic_write_json, atomic_write_text, load_frozen
-from ionwell.config import Campaign, config_diff, dump_campaign
+from ionwell.config.campaign import Campaign, config_diff, dump_campaign
 from ionwell.errors import ConfigError, IonwellError, LedgerError
-from ionwell.host import host_formula_units
-from ionwell.ledger import last_record, sha256_file
-from ionwell.placement import Decision
 from ionwell.science import step as decide_step
+from ionwell.science.host import host_formula_units
+from ionwell.science.placement import Decision
 from ionwell.store.amendments import AMENDABLE, append_amendment, read_amendments
+from ionwell.store.campaign import CampaignPaths, atomic_write_json, atomic_write_text, load_frozen
+from ionwell.store.ledger import last_record, sha256_file
 from ionwell.store.paths import StepPaths, step_label
 
 log = logging.getLogger(__name__)

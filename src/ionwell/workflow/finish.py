@@ -13,20 +13,20 @@ __all__ = ["analyse", "reference", "report"]
 
 def reference(root: str | Path) -> None:
     """Body of rule ``reference``: the guest's chemical potential (``reference.json``)."""
-    from ionwell.analysis import guest_reference
+    from ionwell.analysis.tables import guest_reference
 
     guest_reference(root)
 
 
 def analyse(root: str | Path) -> None:
     """Body of rule ``analysis``: tables and plots in ``analysis/``."""
-    from ionwell.analysis import analyse as _analyse
+    from ionwell.analysis.tables import analyse as _analyse
 
     _analyse(root)
 
 
 def report(root: str | Path, output: str | Path) -> None:
     """Body of rule ``report``: the self-contained HTML page."""
-    from ionwell.report import write_report
+    from ionwell.analysis.report import write_report
 
     write_report([root], output)

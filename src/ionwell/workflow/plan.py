@@ -13,10 +13,10 @@ from pathlib import Path
 
 from pydantic import BaseModel, ConfigDict
 
-from ionwell.campaign import CampaignPaths
-from ionwell.config import Campaign, parse_campaign
+from ionwell.config.campaign import Campaign, parse_campaign
 from ionwell.errors import ConfigError
-from ionwell.ledger import LedgerRecord, last_record
+from ionwell.store.campaign import CampaignPaths
+from ionwell.store.ledger import LedgerRecord, last_record
 from ionwell.store.paths import StepPaths
 
 __all__ = ["Plan", "WINDOW_KEY", "from_snakemake", "is_stopped", "resolve_host_path"]
@@ -61,7 +61,7 @@ def resolve_host_path(campaign: Campaign, base_dir: Path) -> Campaign:
 def from_snakemake(config: dict, configfiles: list, workdir: Path | None = None) -> Plan:
     """Build the plan from Snakemake's ``config`` dict (the base folder for relative host files
     is that of the last config file). Reads the frozen config and the ledger's tail only."""
-    from ionwell.engine_definitions import resolve_engines
+    from ionwell.config.definitions import resolve_engines
 
     data = dict(config)
     window = data.pop(WINDOW_KEY, None)

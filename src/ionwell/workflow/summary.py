@@ -9,9 +9,14 @@ from pathlib import Path
 from ase.io import read
 from pydantic import BaseModel
 
-from ionwell.campaign import CampaignPaths, atomic_write_extxyz, atomic_write_text, load_frozen
 from ionwell.errors import LedgerError
-from ionwell.ledger import last_record, read_ledger, sync_mirror
+from ionwell.store.campaign import (
+    CampaignPaths,
+    atomic_write_extxyz,
+    atomic_write_text,
+    load_frozen,
+)
+from ionwell.store.ledger import last_record, read_ledger, sync_mirror
 from ionwell.store.paths import StepPaths
 from ionwell.workflow.chain import StepError
 

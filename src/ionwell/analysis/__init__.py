@@ -1,0 +1,1 @@
+"""After the loop: tables, the guest reference, every figure, the HTML report."""

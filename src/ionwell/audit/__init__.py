@@ -1,0 +1,1 @@
+"""Read-only views of a campaign folder: where it stands (status) and replay of its decisions."""

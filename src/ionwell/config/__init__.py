@@ -1,0 +1,1 @@
+"""Campaign and engine settings: pydantic models; loading, validation, freezing, JSON Schema."""
