@@ -79,7 +79,7 @@ def main() -> None:
     n_host = len(host)
     settings = ChecksConfig()
     within = PlacementConfig().within
-    envelope = within + 1.0 if settings.envelope is None else settings.envelope
+    envelope = settings.envelope_for(within)
     t_facts, facts = median_time(lambda: host_facts(host, settings), args.repeats)
     guests = guest_series(host, max(args.steps), args.seed, within)
 

@@ -17,7 +17,7 @@ import numpy as np
 from ase.build import molecule
 from ase.io.cube import read_cube_data, write_cube
 
-from ionwell.science.grid import read_cube
+from ionwell.io.cube import read_cube
 
 
 def _median_time(fn, repeat: int = 3) -> float:

@@ -35,7 +35,7 @@ def _run(config: dict, k: int, guests: int, root: Path) -> dict:
     path.write_text(yaml.safe_dump(cfg))
     t0 = time.perf_counter()
     out = subprocess.run(
-        [sys.executable, "-m", "ionwell.cli.commands", "run", str(path), "--root", str(root)],
+        [sys.executable, "-m", "ionwell.cli", "run", str(path), "--root", str(root)],
         capture_output=True,
         text=True,
     )

@@ -26,7 +26,8 @@ import numpy as np
 from ase.io import write
 from ase.lattice.hexagonal import Graphite
 
-from ionwell.science.grid import Grid, save_npz, sphere_mask
+from ionwell.io.npz import save_npz
+from ionwell.science.grid import Grid, sphere_mask
 
 try:  # absent before the union-of-spheres module (to time the old code for comparison)
     from ionwell.science.spheres import LINE_BUDGET, line_cost
@@ -83,7 +84,7 @@ def main() -> None:
                 t0 = time.perf_counter()
                 mask = sphere_mask(grid, host.positions, within)
                 t_mask = time.perf_counter() - t0
-                argv = [sys.executable, "-m", "ionwell.cli.commands", "place", str(mapfile),
+                argv = [sys.executable, "-m", "ionwell.cli", "place", str(mapfile),
                         "--structure", str(structure), "--within", str(within), "--json"]  # fmt: skip
                 runs = [_child(argv) for _ in range(args.repeat)]
                 method = "lines (before clipping)"

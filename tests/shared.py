@@ -1,17 +1,55 @@
 """Inputs shared by test files in different folders (a test file imports from here, never from
-another test file): the pyscf-runner command engine, the Quantum ESPRESSO availability check, and
-the tiny real-DFT campaign."""
+another test file): the ``ionwell`` command run as a subprocess, the pyscf-runner command engine,
+the Quantum ESPRESSO availability check, and the tiny real-DFT campaign."""
 
 from __future__ import annotations
 
 import os
 import shutil
+import subprocess
 import sys
 from pathlib import Path
 
 import yaml
 
 from ionwell.config.definitions import find_definition
+
+#: The ``ionwell`` command as the tests run it: this interpreter, the package's ``__main__``.
+IONWELL = [sys.executable, "-m", "ionwell.cli"]
+
+
+def ionwell(*args: str | Path, timeout: float = 600, **kwargs) -> subprocess.CompletedProcess:
+    """``ionwell ARGS`` in a subprocess, its stdout and stderr captured as text; ``kwargs`` go
+    to :func:`subprocess.run` (``cwd``, ``env``)."""
+    return subprocess.run(
+        [*IONWELL, *map(str, args)], capture_output=True, text=True, timeout=timeout, **kwargs
+    )
+
+
+def run_campaign(
+    config: dict | Path,
+    root: Path,
+    *extra: str,
+    timeout: float = 600,
+    check: bool = True,
+    env: dict[str, str] | None = None,
+) -> subprocess.CompletedProcess:
+    """``ionwell run CONFIG --root ROOT EXTRA`` in a subprocess. ``config`` is a campaign file,
+    or a campaign as a dict, then written to ``ROOT/<name>.yaml`` first. With ``check``, the run
+    must succeed (exit code 0); the failure message shows the tails of stdout and stderr."""
+    if isinstance(config, dict):
+        path = Path(root) / f"{config['name']}.yaml"
+        path.write_text(yaml.safe_dump(config, allow_unicode=True), encoding="utf-8")
+    else:
+        path = Path(config)
+    proc = ionwell("run", path, "--root", root, *extra, timeout=timeout, env=env)
+    if check:
+        assert proc.returncode == 0, (
+            f"ionwell run {path} exited with {proc.returncode}\n--- stdout (tail)\n"
+            f"{proc.stdout[-3000:]}\n--- stderr (tail)\n{proc.stderr[-3000:]}"
+        )
+    return proc
+
 
 RUNNER = Path(__file__).parent / "programs" / "pyscf_runner.py"
 

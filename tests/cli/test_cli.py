@@ -2,17 +2,9 @@
 
 from __future__ import annotations
 
-import subprocess
-import sys
-
 import pytest
 import yaml
-
-IONWELL = [sys.executable, "-m", "ionwell.cli"]
-
-
-def _ionwell(*args, cwd=None):
-    return subprocess.run([*IONWELL, *args], capture_output=True, text=True, cwd=cwd, timeout=120)
+from shared import ionwell
 
 
 def _assert_one_clear_error(proc, *needles):
@@ -38,7 +30,7 @@ def _assert_one_clear_error(proc, *needles):
 def test_bad_config_gives_one_clear_error(tmp_path, config, needles):
     f = tmp_path / "bad.yaml"
     f.write_text(yaml.safe_dump(config))
-    proc = _ionwell("run", str(f), "--root", str(tmp_path))
+    proc = ionwell("run", str(f), "--root", str(tmp_path))
     _assert_one_clear_error(proc, "bad.yaml", *needles)
     assert not (tmp_path / "campaigns").exists() or not any(
         (tmp_path / "campaigns").rglob("*.jsonl")
@@ -57,15 +49,13 @@ def test_bad_structure_file_gives_one_clear_error(tmp_path, content, needle):
     (tmp_path / "garbage.xyz").write_text(content)
     cfg = tmp_path / "c.yaml"
     cfg.write_text(yaml.safe_dump({"name": "bad-host", "host": {"file": "garbage.xyz"}}))
-    proc = _ionwell("run", str(cfg), "--root", str(tmp_path))
+    proc = ionwell("run", str(cfg), "--root", str(tmp_path))
     _assert_one_clear_error(proc, needle)
     # nothing frozen, nothing recorded: fixing the file and running again is possible
     assert not (tmp_path / "campaigns" / "bad-host" / "campaign.yaml").exists()
 
 
 def test_missing_config_and_non_campaign_folders(tmp_path):
-    _assert_one_clear_error(
-        _ionwell("run", str(tmp_path / "nope.yaml")), "nope.yaml", "cannot read"
-    )
-    _assert_one_clear_error(_ionwell("status", str(tmp_path)), "not a campaign folder")
-    _assert_one_clear_error(_ionwell("verify", str(tmp_path)), "no ledger.jsonl")
+    _assert_one_clear_error(ionwell("run", str(tmp_path / "nope.yaml")), "nope.yaml", "cannot read")
+    _assert_one_clear_error(ionwell("status", str(tmp_path)), "not a campaign folder")
+    _assert_one_clear_error(ionwell("verify", str(tmp_path)), "no ledger.jsonl")

@@ -20,7 +20,8 @@ from scipy.optimize import minimize
 from ionwell.cli import place as cli_place
 from ionwell.config.campaign import FlakeBuilder
 from ionwell.errors import PlacementError
-from ionwell.science.grid import Grid, write_cube
+from ionwell.io.cube import write_cube
+from ionwell.science.grid import Grid
 from ionwell.science.host import build_flake
 
 ATOMS = Atoms("C2", positions=[[5.0, 5.0, 3.0], [5.0, 5.0, 7.0]])
@@ -151,7 +152,18 @@ def test_screened_is_refused_and_bad_values_name_the_option(cube, capsys):
         cli_place.run(_parser().parse_args(["place", str(cube), "--count", "500"]))
     with pytest.raises(PlacementError, match="--exclusion.*element"):
         cli_place.run(_parser().parse_args(["place", str(cube), "--exclusion", "Qq=1.0"]))
-    for bad in (["--temperature", "-1"], ["--seed", "-2"], ["--count", "0"], ["--rule", "x"]):
+    # numbers out of the settings model's limits: its message, naming the option and the value
+    for bad, match in [
+        (["--temperature", "-1"], "--temperature: .*greater than or equal to 0, got -1.0"),
+        (["--count", "0"], "--count: .*greater than or equal to 1, got 0"),
+        (["--within", "0"], "--within: .*greater than 0, got 0.0"),
+        (["--separation", "nan"], "--separation: .*finite number"),
+        (["--exclusion", "C=-1"], "--exclusion: exclusion for C must be between 0 and 10 Å"),
+    ]:
+        with pytest.raises(PlacementError, match=match):
+            cli_place.run(_parser().parse_args(["place", str(cube), *bad]))
+    # what is not a number, or not an option's choice, is argparse's to refuse
+    for bad in (["--seed", "-2"], ["--count", "x"], ["--within", "far"], ["--rule", "x"]):
         with pytest.raises(SystemExit):
             _parser().parse_args(["place", str(cube), *bad])
     capsys.readouterr()

@@ -20,6 +20,14 @@ def test_defaults_fill_in():
     assert c.host.builder.spacing == 3.35  # default interlayer spacing of graphite, handbook
 
 
+def test_checks_envelope_defaults_to_one_angstrom_beyond_the_placement_envelope():
+    c = parse_campaign(GOOD)
+    assert c.checks.envelope is None
+    assert c.checks.envelope_for(c.placement.within) == c.placement.within + 1.0
+    given = parse_campaign({**GOOD, "checks": {"envelope": 7.5}, "placement": {"within": 2.0}})
+    assert given.checks.envelope_for(given.placement.within) == 7.5
+
+
 @pytest.mark.parametrize(
     ("patch", "field", "expected"),
     [

@@ -13,17 +13,16 @@ import json
 import math
 import os
 import subprocess
-import sys
 from pathlib import Path
 
 import pytest
 import yaml
+from shared import ionwell, run_campaign
 
 from ionwell import cli
 from ionwell.config.campaign import parse_campaign
 
 SCHEMA = Path(__file__).parents[2] / "config" / "campaign.schema.json"
-IONWELL = [sys.executable, "-m", "ionwell.cli"]
 
 HOST = {"builder": {"shells": 1, "layers": 1}}
 
@@ -540,12 +539,6 @@ def test_verify_names_a_record_with_a_non_utf8_byte(tmp_path, capsys):
 # through Snakemake: not retried, status.json re-published, a full disk
 
 
-def _ionwell(*args, cwd=None, timeout=600):
-    return subprocess.run(
-        [*IONWELL, *args], capture_output=True, text=True, cwd=cwd, timeout=timeout
-    )
-
-
 def test_a_deterministic_compute_error_is_not_retried(tmp_path):
     """A calculator without a potential map and no engine.potential file fails the same way on
     every try: one attempt, one clear line, exit 2 (not Snakemake's three attempts)."""
@@ -563,7 +556,7 @@ def test_a_deterministic_compute_error_is_not_retried(tmp_path):
             }
         )
     )
-    proc = _ionwell("run", str(cfg), "--root", str(tmp_path))
+    proc = ionwell("run", str(cfg), "--root", str(tmp_path))
     assert proc.returncode == 2, proc.stderr
     line = _one_error(proc.stderr, "engine.potential", "offers no potential map")
     assert "step 0" in line
@@ -571,7 +564,7 @@ def test_a_deterministic_compute_error_is_not_retried(tmp_path):
         json.loads(x) for x in (tmp_path / "campaigns/once/events.jsonl").read_text().splitlines()
     ]
     assert [e["event"] for e in events].count("started") == 1, events
-    status = _ionwell("status", str(tmp_path / "campaigns/once"))
+    status = ionwell("status", str(tmp_path / "campaigns/once"))
     assert "failed at step 0" in status.stdout and "engine.potential" in status.stdout
     # the failure is reported once (compute ends normally; collect, never retried, reports it)
     assert proc.stderr.count("step 0000 failed") == 1, proc.stderr
@@ -590,15 +583,14 @@ def test_a_deleted_status_json_is_republished(tmp_path):
             }
         )
     )
-    assert _ionwell("run", str(cfg), "--root", str(tmp_path)).returncode == 0
+    run_campaign(cfg, tmp_path)
     status = tmp_path / "campaigns/pub/steps/0000/status.json"
     before = json.loads(status.read_text())
     status.unlink()
-    proc = _ionwell("run", str(cfg), "--root", str(tmp_path))
-    assert proc.returncode == 0, proc.stderr
+    proc = run_campaign(cfg, tmp_path)
     assert "re-published the missing status.json of step(s) 0" in proc.stdout
     assert json.loads(status.read_text()) == before
-    assert _ionwell("verify", str(tmp_path / "campaigns/pub")).returncode == 0
+    assert ionwell("verify", str(tmp_path / "campaigns/pub")).returncode == 0
 
 
 @contextlib.contextmanager
@@ -636,18 +628,17 @@ def test_disk_full_is_named_in_the_error_and_in_status(tmp_path):
         )
     )
     with _small_filesystem(tmp_path / "fs", "400k") as fs:
-        proc = _ionwell("run", str(cfg), "--root", str(fs))
+        proc = ionwell("run", str(cfg), "--root", str(fs))
         assert proc.returncode == 1, proc.stderr
         line = _one_error(proc.stderr)
         assert "no space left on device" in line.lower(), proc.stderr
         folder = fs / "campaigns" / "full"
         if (folder / "campaign.yaml").exists():
-            st = _ionwell("status", str(folder))
+            st = ionwell("status", str(folder))
             assert "no space left on device" in st.stdout.lower(), st.stdout + st.stderr
         subprocess.run(["mount", "-o", "remount,size=64m", str(fs)], check=True)
-        proc = _ionwell("run", str(cfg), "--root", str(fs))
-        assert proc.returncode == 0, proc.stderr
-        assert _ionwell("verify", str(folder)).returncode == 0
+        run_campaign(cfg, fs)
+        assert ionwell("verify", str(folder)).returncode == 0
 
 
 def test_engine_definitions_and_analysis_settings_read_the_same_way(tmp_path, capsys):

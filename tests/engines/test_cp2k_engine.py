@@ -16,7 +16,6 @@ import re
 import shutil
 import string
 import subprocess
-import sys
 import time
 from pathlib import Path
 
@@ -24,6 +23,7 @@ import numpy as np
 import pytest
 import yaml
 from ase.units import Hartree
+from shared import run_campaign
 
 from ionwell.config.definitions import find_definition
 
@@ -288,17 +288,9 @@ def test_benzene_then_li_campaign(tmp_path):
     from ionwell.store.campaign import CampaignPaths
     from ionwell.store.ledger import read_ledger
 
-    cfg = tmp_path / "bzli.yaml"
-    cfg.write_text(yaml.safe_dump(CAMPAIGN))
     t0 = time.monotonic()
-    proc = subprocess.run(
-        [sys.executable, "-m", "ionwell.cli", "run", str(cfg), "--root", str(tmp_path)],
-        capture_output=True,
-        text=True,
-        timeout=1800,
-    )
+    run_campaign(CAMPAIGN, tmp_path, timeout=1800)
     elapsed = time.monotonic() - t0
-    assert proc.returncode == 0, proc.stdout[-3000:] + proc.stderr[-3000:]
     paths = CampaignPaths(tmp_path / "campaigns" / CAMPAIGN["name"])
     recs = read_ledger(paths.ledger)
     assert [r.guests for r in recs] == [0, 1]

@@ -14,13 +14,13 @@ from __future__ import annotations
 import json
 import logging
 import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
 import yaml
 from ase.io import read
+from shared import ionwell, run_campaign
 
 SYSTEM_PYTHON = "/usr/bin/python3"
 DEFINITION = Path(__file__).resolve().parents[2] / "config" / "engines" / "gpaw.yaml"
@@ -97,12 +97,8 @@ def test_engines_check_gpaw_matches_gpaw_run_directly(tmp_path):
     from ionwell.engines.check import check_campaign
 
     keep = tmp_path / "check"
-    chk = subprocess.run(
-        [sys.executable, "-m", "ionwell.cli", "engines", "check", "gpaw", "--json"]
-        + ["--config-dir", str(tmp_path), "--keep", str(keep)],
-        capture_output=True,
-        text=True,
-        timeout=600,
+    chk = ionwell(
+        "engines", "check", "gpaw", "--json", "--config-dir", tmp_path, "--keep", keep, timeout=600
     )
     assert chk.returncode == 0, chk.stdout + chk.stderr[-3000:]
     report = json.loads(chk.stdout)
@@ -163,15 +159,7 @@ def test_benzene_li_campaign_puts_the_first_li_above_the_ring_face(tmp_path):
         "relax": {"enabled": False},
         "stop": {"guests": 1},
     }
-    cfg = tmp_path / "gpaw-benzene-li.yaml"
-    cfg.write_text(yaml.safe_dump(config))
-    run = subprocess.run(
-        [sys.executable, "-m", "ionwell.cli", "run", str(cfg), "--root", str(tmp_path)],
-        capture_output=True,
-        text=True,
-        timeout=900,
-    )
-    assert run.returncode == 0, run.stdout[-2000:] + run.stderr[-3000:]
+    run_campaign(config, tmp_path, timeout=900)
     paths = CampaignPaths(tmp_path / "campaigns" / "gpaw-benzene-li")
     recs = read_ledger(paths.ledger)
     assert [r.step for r in recs] == [0, 1] and [r.guests for r in recs] == [0, 1]

@@ -10,13 +10,11 @@ from __future__ import annotations
 
 import json
 import logging
-import subprocess
-import sys
 
 import numpy as np
 import pytest
-import yaml
 from ase.io import read
+from shared import run_campaign
 
 log = logging.getLogger("test_pre_relax")
 
@@ -35,15 +33,7 @@ def _campaign(tmp_path, name: str, pre: dict | None) -> dict:
         "relax": relax,
         "stop": {"guests": 1},
     }
-    path = tmp_path / f"{name}.yaml"
-    path.write_text(yaml.safe_dump(cfg))
-    run = subprocess.run(
-        [sys.executable, "-m", "ionwell.cli", "run", str(path), "--root", str(tmp_path)],
-        capture_output=True,
-        text=True,
-        timeout=1200,
-    )
-    assert run.returncode == 0, run.stdout[-2000:] + run.stderr[-3000:]
+    run_campaign(cfg, tmp_path, timeout=1200)
     root = tmp_path / "campaigns" / name
     records = [json.loads(line) for line in (root / "ledger.jsonl").read_text().splitlines()]
     result = json.loads((root / "steps" / "0001" / "result.json").read_text())

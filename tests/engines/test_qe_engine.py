@@ -11,14 +11,13 @@ from __future__ import annotations
 import logging
 import re
 import subprocess
-import sys
 import time
 from pathlib import Path
 
 import numpy as np
 import pytest
 import yaml
-from shared import qe_missing
+from shared import qe_missing, run_campaign
 
 from ionwell.config.definitions import find_definition
 
@@ -135,17 +134,9 @@ def test_benzene_lithium_campaign(tmp_path):
         "relax": {"enabled": False},
         "stop": {"guests": 1},
     }
-    cfg = tmp_path / "qe.yaml"
-    cfg.write_text(yaml.safe_dump(data))
     t0 = time.monotonic()
-    proc = subprocess.run(
-        [sys.executable, "-m", "ionwell.cli", "run", str(cfg), "--root", str(tmp_path)],
-        capture_output=True,
-        text=True,
-        timeout=1500,
-    )
+    run_campaign(data, tmp_path, timeout=1500)
     total = time.monotonic() - t0
-    assert proc.returncode == 0, proc.stdout[-3000:] + proc.stderr[-3000:]
     recs = read_ledger(CampaignPaths(tmp_path / "campaigns" / "qe-benzene-li").ledger)
     assert [r.guests for r in recs] == [0, 1]
     assert all(r.scf_converged for r in recs)

@@ -2,7 +2,7 @@
 here by the test itself, to this process and to the program it runs, as SLURM's ``--signal``
 sends it to every process of the job step (observed with the test cluster of tests/services.py;
 ``sbatch --signal`` in SLURM's man page). The same on the real single-node SLURM, end to end, is
-``test_cluster.py::test_warning_signal_stops_pw_x_cleanly_and_the_retry_resumes``.
+``tests/cluster/test_cluster.py::test_warning_signal_stops_pw_x_cleanly_and_the_retry_resumes``.
 
 Quantum ESPRESSO's soft stop (QE user guide, section "Restarting": a file ``$prefix.EXIT`` in
 the working or output directory makes pw.x stop cleanly and write what ``restart_mode =

@@ -19,6 +19,7 @@ from ionwell.engines.relax import RELAX_LOG, TRAJECTORY
 from ionwell.engines.results import OUTPUT, POTENTIAL
 from ionwell.engines.tblite_engine import (
     COULOMB,
+    TBLITE_GUESS,
     TbliteCalculator,
     TbliteEngine,
     _Xtb,
@@ -205,6 +206,24 @@ def test_bilayer_72_atoms_single_point(tmp_path):
     assert result.scf_converged
     assert np.isfinite(result.energy)
     assert sum(result.charges) == pytest.approx(0.0, abs=1e-6)
+
+
+def test_next_step_starts_cold_and_says_so(tmp_path):
+    """tblite's Result takes no quantity from outside (Result.set knows none in this version), so
+    a step with another atom count cannot restart from the previous step: recorded as cold."""
+    from tblite.exceptions import TBLiteValueError
+    from tblite.interface import Result
+
+    with pytest.raises(TBLiteValueError, match="cannot be set"):
+        Result().set("density-matrix", np.zeros((2, 2)))
+    benzene = molecule("C6H6")
+    _run(benzene, tmp_path / "s0")
+    result, _ = _run(
+        benzene + Atoms("Li", [(0.0, 0.0, 1.9)]), tmp_path / "s1", step=1, charge=1,
+        previous=tmp_path / "s0",
+    )  # fmt: skip
+    assert result.scf_converged and not result.warm_started
+    assert result.guess == TBLITE_GUESS and result.guess.startswith("cold")
 
 
 def test_collect_names_missing_output(tmp_path):

@@ -36,8 +36,10 @@ from ionwell.cli import place as cli_place
 from ionwell.config.campaign import parse_campaign
 from ionwell.engines import get_engine
 from ionwell.engines.base import ComputeContext
+from ionwell.io.cube import write_cube
 from ionwell.io.maps import not_a_potential, write_potential_npy
-from ionwell.science.grid import Grid, save_npz, write_cube
+from ionwell.io.npz import save_npz
+from ionwell.science.grid import Grid
 
 ATOMS = Atoms("C2", positions=[[2.0, 2.0, 1.4], [2.0, 2.0, 3.6]])
 WELL = (3.3, 2.1, 2.5)

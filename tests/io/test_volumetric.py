@@ -18,8 +18,9 @@ from scipy.special import erf
 
 from ionwell.config.engines import POTENTIAL_UNITS, PotentialSpec
 from ionwell.errors import EngineOutputError
+from ionwell.io.cube import write_cube
 from ionwell.io.maps import read_potential, sidecar_path, write_potential_npy
-from ionwell.science.grid import Grid, write_cube
+from ionwell.science.grid import Grid
 
 N = 20  # grid points per axis in the generated maps
 
@@ -568,8 +569,9 @@ def test_a_map_spanning_a_periodic_cell_is_periodic_and_wrapped_atoms_do_not_shi
     # the periodic structure unshifted: whole lattice vectors are no shift (minimum image,
     # common practice), and the grid is periodic along the axes the structure is.
     from ionwell.config.engines import PotentialSpec
-    from ionwell.io.maps import periodic_like, read_potential
-    from ionwell.science.grid import Grid, write_cube
+    from ionwell.io.cube import write_cube
+    from ionwell.io.maps import read_potential
+    from ionwell.science.grid import Grid, periodic_like
 
     cell = np.diag([4.0, 4.0, 6.0])
     atoms = Atoms("Li", positions=[[4.5, 1.0, 3.0]], cell=cell, pbc=[True, True, False])

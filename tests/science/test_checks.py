@@ -23,7 +23,7 @@ from ionwell.science.checks import (
 )
 from ionwell.science.grid import Grid
 from ionwell.science.host import build_flake
-from ionwell.science.placement import Decision, Galleries, Region, place
+from ionwell.science.placement import Decision, Galleries, PlaceSettings, Region, place
 
 A_GRAPHITE = 2.46  # Å, in-plane lattice constant of graphite (handbook value)
 D_GRAPHITE = 3.35  # Å, interlayer spacing of graphite (handbook value)
@@ -566,7 +566,7 @@ _ABOVE = _map([(3.0, 3.0, 5.0)], [1.0], [0.8])  # a well 2.5 Å above the carbon
 
 def test_site_on_region_edge() -> None:
     # the well lies outside a 1.8 Å envelope: the chosen site is on the envelope's edge
-    d = place(_ABOVE, _CARBON, "Li", within=1.8)
+    d = place(_ABOVE, _CARBON, "Li", PlaceSettings(within=1.8))
     assert d.chosen[0].boundary == "region"
     found = decision_findings(7, d, ChecksConfig(), charge_mode="neutral", guest="Li")
     assert _codes(found) == ["site-on-region-edge"]
@@ -579,11 +579,11 @@ def test_site_on_region_edge() -> None:
     assert "gallery_margin" not in f.message
     # switched off; and quiet with the well inside a 4 Å envelope
     assert _decision_codes(d, site_boundary=False) == []
-    assert _decision_codes(place(_ABOVE, _CARBON, "Li", within=4.0)) == []
+    assert _decision_codes(place(_ABOVE, _CARBON, "Li", PlaceSettings(within=4.0))) == []
 
 
 def test_site_on_region_edge_names_galleries_boxes_and_spheres() -> None:
-    d = place(_ABOVE, _CARBON, "Li", within=1.8)
+    d = place(_ABOVE, _CARBON, "Li", PlaceSettings(within=1.8))
     region = Region(
         boxes=[BoxRegion(lower=(0.0, 0.0, 0.0), upper=(6.0, 6.0, 6.0))],
         galleries=Galleries(normal=[0.0, 0.0, 1.0], intervals=[(2.0, 6.0)], margin=0.5),
@@ -603,7 +603,7 @@ def test_site_on_region_edge_names_galleries_boxes_and_spheres() -> None:
 def test_site_on_a_gallery_margin_names_the_margin_alone() -> None:
     # the chosen site (z = 4.20 Å) lies on the lower bound of the gallery (4.2, 6.0): the
     # margin, not the map, sets its height, and the advice says so instead of listing all bounds
-    d = place(_ABOVE, _CARBON, "Li", within=1.8)
+    d = place(_ABOVE, _CARBON, "Li", PlaceSettings(within=1.8))
     region = Region(
         galleries=Galleries(normal=[0.0, 0.0, 1.0], intervals=[(4.2, 6.0)], margin=1.2),
     )
@@ -629,7 +629,7 @@ def test_site_on_a_gallery_margin_names_the_margin_alone() -> None:
 def test_site_on_grid_face() -> None:
     # a well centred 1.2 Å beyond the top face of the grid (z = 5.8 Å)
     face = _map([(3.0, 3.0, 7.0)], [1.0], [1.0])
-    d = place(face, Atoms(), "Li", within=None)
+    d = place(face, Atoms(), "Li", PlaceSettings(within=None))
     assert d.chosen[0].boundary == "grid"
     found = decision_findings(7, d, ChecksConfig(), charge_mode="neutral", guest="Li")
     assert _codes(found) == ["site-on-grid-face"]
@@ -637,7 +637,7 @@ def test_site_on_grid_face() -> None:
     assert "(3.00, 3.00, 5.80) Å" in found[0].message and "step 7" in found[0].message
     assert _decision_codes(d, site_boundary=False) == []
     # the same well inside the grid: quiet
-    inside = place(_map([(3.0, 3.0, 3.0)], [1.0], [1.0]), Atoms(), "Li", within=None)
+    inside = place(_map([(3.0, 3.0, 3.0)], [1.0], [1.0]), Atoms(), "Li", PlaceSettings(within=None))
     assert inside.chosen[0].boundary is None
     assert _decision_codes(inside) == []
 
@@ -645,7 +645,9 @@ def test_site_on_grid_face() -> None:
 def test_well_repels_cation() -> None:
     # a 0.5 V deep well on a +2.5 V plateau: its bottom, +2.0 V, repels a cation (energy z·e·V;
     # electrostatics)
-    d = place(_map([(3.0, 3.0, 3.0)], [0.5], [0.8], offset=2.5), Atoms(), "Li", within=None)
+    d = place(
+        _map([(3.0, 3.0, 3.0)], [0.5], [0.8], offset=2.5), Atoms(), "Li", PlaceSettings(within=None)
+    )
     assert d.chosen[0].potential == pytest.approx(2.0, abs=1e-3)
     found = decision_findings(7, d, ChecksConfig(), charge_mode="cation", guest="Li")
     assert _codes(found) == ["well-repels-cation"]
@@ -656,7 +658,7 @@ def test_well_repels_cation() -> None:
     assert _decision_codes(d, "cation", cation_well_max=None) == []
     assert _decision_codes(d, "cation", cation_well_max=2.5) == []
     # the well at -0.5 V: quiet in cation mode too
-    low = place(_map([(3.0, 3.0, 3.0)], [0.5], [0.8]), Atoms(), "Li", within=None)
+    low = place(_map([(3.0, 3.0, 3.0)], [0.5], [0.8]), Atoms(), "Li", PlaceSettings(within=None))
     assert _decision_codes(low, "cation") == []
 
 
@@ -674,7 +676,7 @@ def _flat(depths: list[float], extra: bool = False) -> Grid:
 def test_map_too_flat() -> None:
     # six wells of equal depth, ±4 mV of noise: all within 0.02 V of the deepest
     noise = np.random.default_rng(3).uniform(-0.004, 0.004, 6)
-    d = place(_flat(list(1.0 + noise)), Atoms(), "Li", within=None)
+    d = place(_flat(list(1.0 + noise)), Atoms(), "Li", PlaceSettings(within=None))
     assert len(d.candidates) == 6
     found = decision_findings(7, d, ChecksConfig(), charge_mode="neutral", guest="Li")
     assert _codes(found) == ["map-too-flat"]
@@ -683,7 +685,7 @@ def test_map_too_flat() -> None:
     assert "records only the placement.candidates deepest" in msg
     assert "engine.potential_grid.spacing" in msg and "'screened'" in msg
     # with a shallower seventh well recorded, six of seven tie
-    d7 = place(_flat(list(1.0 + noise), extra=True), Atoms(), "Li", within=None)
+    d7 = place(_flat(list(1.0 + noise), extra=True), Atoms(), "Li", PlaceSettings(within=None))
     msg = decision_findings(7, d7, ChecksConfig(), charge_mode="neutral", guest="Li")[0].message
     assert "6 of the 7 recorded candidate wells" in msg and "records only" not in msg
     # fewer ties than flat_map_wells, a tighter tolerance, or the check off: quiet
@@ -691,12 +693,12 @@ def test_map_too_flat() -> None:
     assert _decision_codes(d, flat_map_tolerance=0.001) == []
     assert _decision_codes(d, flat_map_tolerance=None) == []
     # one clearly deepest well (0.1 V below the rest): quiet
-    deep = place(_flat([1.1, *list(1.0 + noise[1:])]), Atoms(), "Li", within=None)
+    deep = place(_flat([1.1, *list(1.0 + noise[1:])]), Atoms(), "Li", PlaceSettings(within=None))
     assert _decision_codes(deep) == []
 
 
 def test_decision_without_sites_has_no_findings() -> None:
-    d = place(_ABOVE, _CARBON, "Li", exclusion={"C": 9.0}, within=3.0)
+    d = place(_ABOVE, _CARBON, "Li", PlaceSettings(exclusion={"C": 9.0}, within=3.0))
     assert d.chosen == [] and d.candidates == []
     assert _decision_codes(d, "cation") == []
 

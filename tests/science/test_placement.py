@@ -19,6 +19,7 @@ from ase import Atoms
 from ase.data import atomic_numbers, covalent_radii
 from ase.io import write as ase_write
 from ase.units import Bohr, Hartree, kB
+from pydantic import ValidationError
 from scipy.optimize import minimize
 from scipy.spatial.transform import Rotation
 from scipy.stats import chisquare
@@ -32,10 +33,14 @@ from ionwell.config.campaign import (
     parse_campaign,
 )
 from ionwell.errors import ConfigError, GridError, PlacementError
-from ionwell.science.grid import Grid, orient, save_npz, write_cube
+from ionwell.io.cube import write_cube
+from ionwell.io.npz import save_npz
+from ionwell.science.grid import Grid, orient
 from ionwell.science.host import build_flake
 from ionwell.science.placement import (
+    RULES,
     Decision,
+    PlaceSettings,
     Region,
     Site,
     admissible_mask,
@@ -102,7 +107,7 @@ def test_default_exclusion_formula():
 
 def test_deepest_well_matches_analytic_minimum():
     grid = _grid(_field)
-    d = place(grid, ATOMS, "Li", within=4.0)
+    d = place(grid, ATOMS, "Li", PlaceSettings(within=4.0))
     assert isinstance(d, Decision)
     assert d.rule == "deepest" and d.guest == "Li"
     assert len(d.chosen) == 1 and d.chosen[0] == d.candidates[0]
@@ -128,7 +133,7 @@ def test_deepest_well_matches_analytic_minimum():
 def test_skewed_axes_give_the_same_site():
     axes = np.array([[SPACING, 0.0, 0.0], [0.06, SPACING, 0.0], [0.0, 0.05, SPACING]])
     grid = _grid(_field, axes=axes)
-    d = place(grid, ATOMS, "Li", within=4.0)
+    d = place(grid, ATOMS, "Li", PlaceSettings(within=4.0))
     truth = _analytic_min(_field, CENTRES[0])
     assert np.linalg.norm(np.array(d.chosen[0].position) - truth) < 0.05
 
@@ -137,7 +142,7 @@ def test_deeper_well_inside_exclusion_is_skipped():
     grid = _grid(_field)
     # a third carbon right on the deepest well: it is no longer admissible
     atoms = ATOMS + Atoms("C", positions=[CENTRES[0]])
-    d = place(grid, atoms, "Li", within=4.0)
+    d = place(grid, atoms, "Li", PlaceSettings(within=4.0))
     truth = _analytic_min(_field, CENTRES[1])
     assert np.linalg.norm(np.array(d.chosen[0].position) - truth) < 0.05
     for site in d.candidates:
@@ -154,12 +159,12 @@ def test_envelope_excludes_a_deep_well_far_from_the_host():
         return _wells(p, far, depths, widths)
 
     grid = _grid(field)
-    free = place(grid, ATOMS, "Li", within=None)
+    free = place(grid, ATOMS, "Li", PlaceSettings(within=None))
     assert np.linalg.norm(np.array(free.chosen[0].position) - _analytic_min(field, far[0])) < 0.05
-    bound = place(grid, ATOMS, "Li", within=4.0)
+    bound = place(grid, ATOMS, "Li", PlaceSettings(within=4.0))
     assert np.linalg.norm(np.array(bound.chosen[0].position) - _analytic_min(field, far[1])) < 0.05
     # the envelope may be restricted to some atoms only
-    only_first = place(grid, ATOMS, "Li", within=2.5, envelope_indices=[0])
+    only_first = place(grid, ATOMS, "Li", PlaceSettings(within=2.5), envelope_indices=[0])
     for site in only_first.candidates:
         assert np.linalg.norm(np.array(site.position) - ATOMS.positions[0]) <= 2.5 + 1e-9
 
@@ -173,7 +178,7 @@ def test_periodic_well_straddling_the_boundary_is_found_and_wrapped():
 
     grid = _grid(field, n=n, pbc=(True, True, True))
     atoms = Atoms("C", positions=[[6.0, 4.0, 4.0]])  # 1.87 Å from the well through the boundary
-    d = place(grid, atoms, "Li", within=3.0)
+    d = place(grid, atoms, "Li", PlaceSettings(within=3.0))
     pos = np.array(d.chosen[0].position)
     assert np.all((pos >= 0) & (pos < period))
     truth = _analytic_min(field, centre) % period
@@ -192,10 +197,10 @@ def test_minimum_image_exclusion():
     # outside the exclusion sphere (about -0.61 V) is shallower than the second well
     atoms = Atoms("C", positions=[[7.6, 4.0, 4.0]])
     open_grid = _grid(field, n=n)
-    d_open = place(open_grid, atoms, "Li", within=None)
+    d_open = place(open_grid, atoms, "Li", PlaceSettings(within=None))
     assert np.linalg.norm(np.array(d_open.chosen[0].position) - centres[0]) < 0.05
     periodic = _grid(field, n=n, pbc=(True, True, True))
-    d_per = place(periodic, atoms, "Li", within=None)
+    d_per = place(periodic, atoms, "Li", PlaceSettings(within=None))
     assert np.linalg.norm(np.array(d_per.chosen[0].position) - centres[1]) < 0.05
     mask = admissible_mask(periodic, atoms, {"C": 1.5}, None)
     assert not mask[2, 20, 20]  # (0.4, 4, 4) Å: 1.2 Å from the atom's image
@@ -210,8 +215,8 @@ def test_sign_flipped_map_gives_the_same_site():
 
     grid = _grid(field)
     flipped = Grid(grid.origin, grid.axes, -grid.values)
-    direct = place(orient(grid, ATOMS, "auto"), ATOMS, "Li", within=4.0)
-    back = place(orient(flipped, ATOMS, "auto"), ATOMS, "Li", within=4.0)
+    direct = place(orient(grid, ATOMS, "auto"), ATOMS, "Li", PlaceSettings(within=4.0))
+    back = place(orient(flipped, ATOMS, "auto"), ATOMS, "Li", PlaceSettings(within=4.0))
     assert back == direct
     assert (
         np.linalg.norm(np.array(back.chosen[0].position) - _analytic_min(field, CENTRES[0])) < 0.05
@@ -220,7 +225,7 @@ def test_sign_flipped_map_gives_the_same_site():
 
 def test_no_admissible_point_gives_an_empty_decision():
     grid = _grid(_field)
-    d = place(grid, ATOMS, "Li", exclusion={"C": 9.0}, within=3.0)
+    d = place(grid, ATOMS, "Li", PlaceSettings(exclusion={"C": 9.0}, within=3.0))
     assert d.chosen == [] and d.candidates == []
     assert d.admissible_fraction == 0.0
     assert d.reason.startswith("no admissible well")
@@ -231,16 +236,17 @@ def test_bad_arguments():
     grid = _grid(_field, n=10)
     with pytest.raises(PlacementError, match="guest"):
         place(grid, ATOMS, "Zz")
-    with pytest.raises(PlacementError, match="exclusion for C"):
-        place(grid, ATOMS, "Li", exclusion={"C": -1.0})
-    with pytest.raises(PlacementError, match="exclusion"):
-        place(grid, ATOMS, "Li", exclusion={"Blah": 1.0})
-    with pytest.raises(PlacementError, match="within"):
-        place(grid, ATOMS, "Li", within=0.0)
     with pytest.raises(PlacementError, match="out of range"):
         place(grid, ATOMS, "Li", envelope_indices=[5])
-    with pytest.raises(PlacementError, match="candidates"):
-        place(grid, ATOMS, "Li", candidates=0)
+    # the settings model refuses unusable numbers before place() sees them
+    for kwargs, match in [
+        ({"exclusion": {"C": -1.0}}, "exclusion for C"),
+        ({"exclusion": {"Blah": 1.0}}, "exclusion"),
+        ({"within": 0.0}, "within"),
+        ({"candidates": 0}, "candidates"),
+    ]:
+        with pytest.raises(ValidationError, match=match):
+            PlaceSettings(**kwargs)
 
 
 def test_ties_go_to_the_lower_grid_index():
@@ -251,7 +257,7 @@ def test_ties_go_to_the_lower_grid_index():
         return _wells(p, centres, [1.0, 1.0], [0.6, 0.6])
 
     grid = _grid(field)
-    d = place(grid, Atoms(), "Li", within=None, candidates=2)
+    d = place(grid, Atoms(), "Li", PlaceSettings(within=None, candidates=2))
     a, b = d.candidates
     assert a.potential == pytest.approx(b.potential, abs=1e-12)
     assert a.index < b.index
@@ -358,7 +364,7 @@ def test_point_charge_term_shifts_the_well_to_the_analytic_minimum():
 
     grid = _grid(field)
     atoms = Atoms("C", positions=[charge_at])
-    d = place(grid, atoms, "Li", within=4.0)
+    d = place(grid, atoms, "Li", PlaceSettings(within=4.0))
     truth = _analytic_min(field, (5.1, 4.9, 5.3))
     assert np.linalg.norm(truth - np.array([5.1, 4.9, 5.0])) > 0.2  # the charge moved the well
     assert np.linalg.norm(np.array(d.chosen[0].position) - truth) < 0.05
@@ -391,12 +397,12 @@ def test_near_degenerate_wells_are_marked_and_the_tie_break_is_the_order():
         return _wells(p, centres, [1.0, 0.995, 0.8], [0.7, 0.7, 0.7])
 
     grid = _grid(field)
-    d = place(grid, Atoms(), "Li", within=None, candidates=3, degenerate=0.01)
+    d = place(grid, Atoms(), "Li", PlaceSettings(within=None, candidates=3, degenerate=0.01))
     assert [s.degenerate for s in d.candidates] == [True, True, False]
     assert d.chosen == [d.candidates[0]] and d.chosen_wells == [0]
     assert "near-degenerate" in d.reason and "lower grid index" in d.reason
     assert d.degenerate == 0.01
-    strict = place(grid, Atoms(), "Li", within=None, candidates=3, degenerate=0.001)
+    strict = place(grid, Atoms(), "Li", PlaceSettings(within=None, candidates=3, degenerate=0.001))
     assert not any(s.degenerate for s in strict.candidates)
     assert "near-degenerate" not in strict.reason
 
@@ -415,14 +421,23 @@ def _sites(potentials, spacing=5.0):
 
 def test_thermal_at_zero_temperature_is_the_deepest_rule():
     grid = _grid(_field)
-    deepest = place(grid, ATOMS, "Li", within=4.0)
-    zero = place(grid, ATOMS, "Li", within=4.0, rule="thermal", temperature=0.0, seed=7, step=3)
+    deepest = place(grid, ATOMS, "Li", PlaceSettings(within=4.0))
+    zero = place(
+        grid,
+        ATOMS,
+        "Li",
+        PlaceSettings(within=4.0, rule="thermal", temperature=0.0),
+        seed=7,
+        step=3,
+    )
     assert zero.chosen == deepest.chosen and zero.candidates == deepest.candidates
     assert zero.rule == "thermal" and zero.temperature == 0.0 and zero.seed == 7
     assert zero.probabilities[0] == 1.0 and sum(zero.probabilities) == 1.0
     # T → 0: every weight but the deepest underflows, whatever the seed
     for seed in range(20):
-        cold = choose(deepest.candidates, rule="thermal", temperature=1e-3, seed=seed, step=1)
+        cold = choose(
+            deepest.candidates, PlaceSettings(rule="thermal", temperature=1e-3), seed=seed, step=1
+        )
         assert cold.chosen == deepest.chosen_wells
 
 
@@ -433,17 +448,17 @@ def test_thermal_choices_follow_the_boltzmann_weights():
     # the weights the rule must follow: exp(-z (V - V_min) / kT), kB from ase.units (CODATA)
     weights = np.exp(-z * (v - v.min()) / (kB * temperature))
     expected_p = weights / weights.sum()
-    first = choose(wells, rule="thermal", temperature=temperature, seed=0, step=0)
+    first = choose(wells, PlaceSettings(rule="thermal", temperature=temperature), seed=0, step=0)
     assert first.probabilities == pytest.approx(expected_p.tolist(), rel=1e-12)
     draws = 4000
     counts = np.zeros(len(wells))
     for seed in range(draws):
-        c = choose(wells, rule="thermal", temperature=temperature, seed=seed, step=5)
+        c = choose(wells, PlaceSettings(rule="thermal", temperature=temperature), seed=seed, step=5)
         counts[c.chosen[0]] += 1
     # scipy.stats.chisquare goodness of fit at significance 0.001 (fixed seeds: deterministic)
     assert chisquare(counts, draws * expected_p).pvalue > 0.001
     # a divalent guest (z = 2) sharpens the weights as exp(-2 ΔV / kT)
-    two = choose(wells, rule="thermal", temperature=temperature, ion_charge=2)
+    two = choose(wells, PlaceSettings(rule="thermal", temperature=temperature, ion_charge=2))
     w2 = np.exp(-2 * (v - v.min()) / (kB * temperature))
     assert two.probabilities == pytest.approx((w2 / w2.sum()).tolist(), rel=1e-12)
 
@@ -451,14 +466,31 @@ def test_thermal_choices_follow_the_boltzmann_weights():
 def test_thermal_is_reproducible_from_seed_and_step():
     wells = _sites([-1.0, -0.99, -0.98, -0.97, -0.96])
     runs = [
-        [choose(wells, rule="thermal", temperature=3000.0, seed=s, step=t).chosen for t in range(8)]
+        [
+            choose(wells, PlaceSettings(rule="thermal", temperature=3000.0), seed=s, step=t).chosen
+            for t in range(8)
+        ]
         for s in (11, 11, 12)
     ]
     assert runs[0] == runs[1]
     assert runs[0] != runs[2]
     grid = _grid(_field)
-    a = place(grid, ATOMS, "Li", within=4.0, rule="thermal", temperature=5000.0, seed=4, step=9)
-    b = place(grid, ATOMS, "Li", within=4.0, rule="thermal", temperature=5000.0, seed=4, step=9)
+    a = place(
+        grid,
+        ATOMS,
+        "Li",
+        PlaceSettings(within=4.0, rule="thermal", temperature=5000.0),
+        seed=4,
+        step=9,
+    )
+    b = place(
+        grid,
+        ATOMS,
+        "Li",
+        PlaceSettings(within=4.0, rule="thermal", temperature=5000.0),
+        seed=4,
+        step=9,
+    )
     assert a == b and a.seed == 4 and a.step == 9
     assert a.reason.startswith("thermal choice at 5000 K among")
 
@@ -486,7 +518,12 @@ def test_several_guests_per_step_keep_the_separation():
         d -= period * np.round(d / period)
         return np.linalg.norm(d)
 
-    deep = place(grid, Atoms(), "Li", within=None, count=4, separation=separation, candidates=14)
+    deep = place(
+        grid,
+        Atoms(),
+        "Li",
+        PlaceSettings(within=None, per_step=4, separation=separation, candidates=14),
+    )
     assert len(deep.chosen) == 4 and deep.count == 4 and deep.separation == separation
     # greedy in depth order: the deepest first, and every deeper well skipped lies within the
     # separation of a well taken before it
@@ -501,12 +538,14 @@ def test_several_guests_per_step_keep_the_separation():
             grid,
             Atoms(),
             "Li",
-            within=None,
-            rule="thermal",
-            temperature=3000.0,
-            count=4,
-            separation=separation,
-            candidates=14,
+            PlaceSettings(
+                within=None,
+                rule="thermal",
+                temperature=3000.0,
+                per_step=4,
+                separation=separation,
+                candidates=14,
+            ),
             seed=seed,
         )
         for d in (deep, hot):
@@ -516,7 +555,9 @@ def test_several_guests_per_step_keep_the_separation():
                 for j in range(i):
                     assert min_image(pos[i], pos[j]) >= separation
     # more guests than the wells allow: as many as fit, and the reason says so
-    crowded = place(grid, Atoms(), "Li", within=None, count=40, separation=6.0, candidates=14)
+    crowded = place(
+        grid, Atoms(), "Li", PlaceSettings(within=None, per_step=40, separation=6.0, candidates=14)
+    )
     assert 1 <= len(crowded.chosen) < 40
     assert f"only {len(crowded.chosen)} of 40 guests" in crowded.reason
 
@@ -535,7 +576,9 @@ def test_separation_counts_periodic_images():
         )
 
     grid = _grid(field, n=n, spacing=period / n, pbc=(True, True, True))
-    d = place(grid, Atoms(), "Li", within=None, count=2, separation=2.0, merge=0.0)
+    d = place(
+        grid, Atoms(), "Li", PlaceSettings(within=None, per_step=2, separation=2.0, merge=0.0)
+    )
     assert np.linalg.norm(np.array(d.chosen[1].position) - (4.0, 4.0, 1.0)) < 0.05
 
 
@@ -548,7 +591,13 @@ def test_screened_takes_the_lowest_engine_energy():
         # the second-deepest well has the lowest energy; the third failed
         return [-10.0, -10.5, None]
 
-    d = place(grid, ATOMS, "Li", within=4.0, rule="screened", top=3, energy_of=energy_of)
+    d = place(
+        grid,
+        ATOMS,
+        "Li",
+        PlaceSettings(within=4.0, rule="screened", screen={"top": 3}),
+        energy_of=energy_of,
+    )
     assert len(seen) == 1 and seen[0] == d.candidates[:3]
     assert d.chosen_wells == [1] and d.chosen == [d.candidates[1]]
     assert d.energies[:3] == [-10.0, -10.5, None]
@@ -556,28 +605,45 @@ def test_screened_takes_the_lowest_engine_energy():
     assert d.reason.startswith("lowest engine energy among the 3 deepest wells: well 2")
     assert "0.500 eV below the next" in d.reason and "without an energy" in d.reason
     # ties go to the deeper well
-    tie = choose(d.candidates, rule="screened", top=2, energy_of=lambda s: [1.0, 1.0])
+    tie = choose(
+        d.candidates,
+        PlaceSettings(rule="screened", screen={"top": 2}),
+        energy_of=lambda s: [1.0, 1.0],
+    )
     assert tie.chosen == [0]
     with pytest.raises(PlacementError, match="needs the energies"):
-        place(grid, ATOMS, "Li", within=4.0, rule="screened")
+        place(grid, ATOMS, "Li", PlaceSettings(within=4.0, rule="screened"))
     with pytest.raises(PlacementError, match="returned 1 energies for 3"):
-        choose(d.candidates, rule="screened", top=3, energy_of=lambda s: [0.0])
-    nothing = choose(d.candidates, rule="screened", top=2, energy_of=lambda s: [None, math.nan])
+        choose(
+            d.candidates,
+            PlaceSettings(rule="screened", screen={"top": 3}),
+            energy_of=lambda s: [0.0],
+        )
+    nothing = choose(
+        d.candidates,
+        PlaceSettings(rule="screened", screen={"top": 2}),
+        energy_of=lambda s: [None, math.nan],
+    )
     assert nothing.chosen == [] and "no energy could be computed" in nothing.reason
 
 
 def test_rule_arguments_are_checked():
     wells = _sites([-1.0])
+    # the settings model refuses unusable rule settings; choose() checks the draw's seed and step
     for kwargs, match in [
-        ({"rule": "random"}, "unknown placement rule"),
-        ({"count": 0}, "count"),
+        ({"rule": "random"}, "rule"),
+        ({"per_step": 0}, "per_step"),
         ({"separation": 0.0}, "separation"),
         ({"temperature": -1.0}, "temperature"),
-        ({"seed": -1}, "seed"),
-        ({"top": 0}, "top"),
+        ({"screen": {"top": 0}}, "top"),
     ]:
-        with pytest.raises(PlacementError, match=match):
-            choose(wells, **kwargs)
+        with pytest.raises(ValidationError, match=match):
+            PlaceSettings(**kwargs)
+    for kwargs in ({"seed": -1}, {"step": -1}):
+        with pytest.raises(PlacementError, match="seed and step"):
+            choose(wells, PlaceSettings(), **kwargs)
+    # every rule of the table is a choice of the settings model
+    assert set(RULES) == set(PlacementConfig.model_fields["rule"].annotation.__args__)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -587,14 +653,14 @@ def test_rule_arguments_are_checked():
 def test_user_boxes_and_spheres_restrict_the_region():
     grid = _grid(_field)
     box = BoxRegion(lower=(6.5, 6.0, 4.0), upper=(8.5, 8.0, 6.0))  # around the third well
-    d = place(grid, ATOMS, "Li", within=4.0, region=Region(boxes=[box]))
+    d = place(grid, ATOMS, "Li", PlaceSettings(within=4.0, boxes=[box]))
     assert np.linalg.norm(np.array(d.chosen[0].position) - _analytic_min(_field, CENTRES[2])) < 0.05
     for s in d.candidates:
         assert np.all(np.array(s.position) >= box.lower) and np.all(
             np.array(s.position) <= box.upper
         )
     sphere = SphereRegion(centre=CENTRES[1], radius=1.0)
-    both = place(grid, ATOMS, "Li", within=4.0, region=Region(boxes=[box], spheres=[sphere]))
+    both = place(grid, ATOMS, "Li", PlaceSettings(within=4.0, boxes=[box], spheres=[sphere]))
     assert (
         np.linalg.norm(np.array(both.chosen[0].position) - _analytic_min(_field, CENTRES[1])) < 0.05
     )
@@ -610,8 +676,7 @@ def test_user_boxes_and_spheres_restrict_the_region():
         grid,
         ATOMS,
         "Li",
-        within=4.0,
-        region=Region(boxes=[BoxRegion(lower=(0.0, 0.0, 0.0), upper=(0.1, 0.1, 0.1))]),
+        PlaceSettings(within=4.0, boxes=[BoxRegion(lower=(0.0, 0.0, 0.0), upper=(0.1, 0.1, 0.1))]),
     )
     assert empty.chosen == [] and "inside a user box or sphere" in empty.reason
 
@@ -762,7 +827,7 @@ def test_refined_wells_never_leave_the_admissible_region():
 
     grid = _grid(field)
     atoms = Atoms("C", positions=[charge_at])
-    d = place(grid, atoms, "Li", exclusion={"C": 1.6}, within=4.0, candidates=30)
+    d = place(grid, atoms, "Li", PlaceSettings(exclusion={"C": 1.6}, within=4.0, candidates=30))
     assert any(s.edge for s in d.candidates)
     for s in d.candidates:
         assert np.linalg.norm(np.array(s.position) - charge_at) >= 1.6 - 1e-9
@@ -810,18 +875,23 @@ def test_boundary_tells_the_region_edge_from_the_grid_face_and_the_inside():
     # straight towards the well (z = 2.5 + 1.8 = 4.3 Å, the grid point below at 4.2 Å)
     atoms = Atoms("C", positions=[[3.0, 3.0, 2.5]])
     grid = _grid(_one_well((3.0, 3.0, 5.0)), n=SMALL)
-    tight = place(grid, atoms, "Li", within=1.8)
+    tight = place(grid, atoms, "Li", PlaceSettings(within=1.8))
     site = tight.chosen[0]
     assert site.boundary == "region" and site.edge
     assert np.linalg.norm(np.array(site.position) - [3.0, 3.0, 4.2]) < 1e-9
     # a 4 Å envelope holds the well: refined onto its centre, no boundary
-    roomy = place(grid, atoms, "Li", within=4.0)
+    roomy = place(grid, atoms, "Li", PlaceSettings(within=4.0))
     site = roomy.chosen[0]
     assert site.boundary is None and not site.edge
     assert np.linalg.norm(np.array(site.position) - [3.0, 3.0, 5.0]) < 0.02
     # a well centred 1.2 Å beyond the top face (z = 5.8 Å) of an open grid: its lowest grid
     # point is on that face
-    face = place(_grid(_one_well((3.0, 3.0, 7.0), width=1.0), n=SMALL), Atoms(), "Li", within=None)
+    face = place(
+        _grid(_one_well((3.0, 3.0, 7.0), width=1.0), n=SMALL),
+        Atoms(),
+        "Li",
+        PlaceSettings(within=None),
+    )
     site = face.chosen[0]
     assert site.boundary == "grid" and site.edge
     assert site.index == [15, 15, SMALL - 1]
@@ -829,14 +899,14 @@ def test_boundary_tells_the_region_edge_from_the_grid_face_and_the_inside():
     for d in (tight, roomy, face):
         assert all(s.edge == (s.boundary is not None) for s in d.candidates)
         assert Decision.model_validate_json(d.model_dump_json()) == d
-    assert place(grid, atoms, "Li", within=1.8) == tight
+    assert place(grid, atoms, "Li", PlaceSettings(within=1.8)) == tight
 
 
 def test_boundary_of_a_user_box_is_the_region_and_periodic_axes_have_no_face():
     # a box that stops 1 Å short of the well: the site sits on the box's face
     grid = _grid(_one_well((3.0, 3.0, 4.0)), n=SMALL)
-    box = Region(boxes=[BoxRegion(lower=(1.0, 1.0, 1.0), upper=(5.0, 5.0, 3.0))])
-    d = place(grid, Atoms(), "Li", within=None, region=box)
+    box = BoxRegion(lower=(1.0, 1.0, 1.0), upper=(5.0, 5.0, 3.0))
+    d = place(grid, Atoms(), "Li", PlaceSettings(within=None, boxes=[box]))
     assert d.chosen[0].boundary == "region"
     assert d.chosen[0].position[2] == pytest.approx(3.0)
     # the same well across the x boundary of a periodic grid: no face there, so no boundary
@@ -845,7 +915,9 @@ def test_boundary_of_a_user_box_is_the_region_and_periodic_axes_have_no_face():
     def field(p):
         return _wells(p, [(-0.1, 3.0, 3.0)], [1.0], [0.8], period=period)
 
-    periodic = place(_grid(field, n=SMALL, pbc=(True, True, True)), Atoms(), "Li", within=None)
+    periodic = place(
+        _grid(field, n=SMALL, pbc=(True, True, True)), Atoms(), "Li", PlaceSettings(within=None)
+    )
     site = periodic.chosen[0]
     assert site.index[0] in (0, SMALL - 1)
     assert site.boundary is None and not site.edge

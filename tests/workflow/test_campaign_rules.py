@@ -12,21 +12,19 @@ boundary about 3 Å from the nearest atom — the bound 2.2 Å used below separa
 from __future__ import annotations
 
 import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
-import yaml
 from ase.io import read
 from ase.units import Hartree
+from shared import ionwell, run_campaign
 
 from ionwell.store.campaign import CampaignPaths
 from ionwell.store.ledger import read_ledger
 
 pytestmark = pytest.mark.slow
 
-IONWELL = [sys.executable, "-m", "ionwell.cli"]
 
 ENGINE = {
     "xc": "lda,vwn",
@@ -60,14 +58,7 @@ def _campaign(
             data[key] = {"potential_grid": ENGINE["potential_grid"], **value}  # another kind
         else:
             data[key] = {**data.get(key, {}), **value}
-    cfg = tmp / f"{name}.yaml"
-    cfg.write_text(yaml.safe_dump(data))
-    proc = subprocess.run(
-        [*IONWELL, "run", str(cfg), "--root", str(tmp)],
-        capture_output=True,
-        text=True,
-        timeout=900,
-    )
+    proc = run_campaign(data, tmp, timeout=900, check=False)
     return CampaignPaths(tmp / "campaigns" / name), proc
 
 
@@ -82,7 +73,7 @@ def _nearest_host(paths: CampaignPaths, positions) -> np.ndarray:
 
 
 def _verify(paths: CampaignPaths) -> None:
-    v = subprocess.run([*IONWELL, "verify", str(paths.root)], capture_output=True, text=True)
+    v = ionwell("verify", str(paths.root))
     assert v.returncode == 0, v.stdout + v.stderr
 
 
@@ -147,7 +138,7 @@ def test_rejects_exhausted_stop_the_campaign_with_the_reason(tmp_path):
     assert r1.outcome == "stop" and r1.decision is None
     assert r1.stop_reason.startswith("stopped by check") and "from host atom" in r1.stop_reason
     assert (paths.step(1) / "STOP").exists()
-    st = subprocess.run([*IONWELL, "status", str(paths.root)], capture_output=True, text=True)
+    st = ionwell("status", str(paths.root))
     assert "stopped by check" in st.stdout
     _verify(paths)
 
@@ -264,5 +255,5 @@ def test_screened_rule_with_tight_binding_and_a_tblite_campaign(tmp_path):
     assert proc2.returncode == 0, proc2.stderr[-3000:]
     assert [r.guests for r in read_ledger(paths2.ledger)] == [0, 1, 2]
     assert all(r.engine == "tblite" for r in read_ledger(paths2.ledger))
-    st = subprocess.run([*IONWELL, "status", str(paths2.root)], capture_output=True, text=True)
+    st = ionwell("status", str(paths2.root))
     assert "site potentials are approximate" in st.stdout

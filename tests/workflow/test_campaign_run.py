@@ -8,7 +8,6 @@ import os
 import random
 import signal
 import subprocess
-import sys
 import time
 from pathlib import Path
 
@@ -17,14 +16,12 @@ import pytest
 import yaml
 from ase.db import connect
 from ase.io import read
-from shared import TINY
+from shared import IONWELL, TINY, ionwell, run_campaign
 
 from ionwell.store.campaign import CampaignPaths
 from ionwell.store.ledger import read_ledger
 
 pytestmark = pytest.mark.slow
-
-IONWELL = [sys.executable, "-m", "ionwell.cli"]
 
 
 # TINY (shared with the report test): Li atoms into one benzene sheet, LDA/STO-3G
@@ -34,15 +31,6 @@ def _write_config(folder: Path, **changes) -> Path:
     f = folder / "tiny.yaml"
     f.write_text(yaml.safe_dump(data))
     return f
-
-
-def _run(config: Path, root: Path, timeout: float = 600) -> subprocess.CompletedProcess:
-    return subprocess.run(
-        [*IONWELL, "run", str(config), "--root", str(root)],
-        capture_output=True,
-        text=True,
-        timeout=timeout,
-    )
 
 
 def _summary(root: Path) -> dict:
@@ -65,9 +53,8 @@ def reference(tmp_path_factory):
     root = tmp_path_factory.mktemp("uninterrupted")
     cfg = _write_config(root)
     t0 = time.monotonic()
-    proc = _run(cfg, root)
+    proc = run_campaign(cfg, root)
     elapsed = time.monotonic() - t0
-    assert proc.returncode == 0, proc.stderr[-3000:]
     return root, cfg, elapsed, proc
 
 
@@ -81,7 +68,7 @@ def test_uninterrupted_campaign_reaches_its_stop_rule(reference):
     # the status table is printed at the end
     assert "state: finished" in proc.stdout
     # every recorded file is on disk and matches
-    v = subprocess.run([*IONWELL, "verify", str(paths.root)], capture_output=True, text=True)
+    v = ionwell("verify", str(paths.root))
     assert v.returncode == 0, v.stderr
     # derived outputs
     assert len(read(paths.trajectory, index=":")) == 4
@@ -134,7 +121,7 @@ def test_analysis_of_a_campaign_still_running(reference, tmp_path):
     shutil.copytree(src, copy, ignore=shutil.ignore_patterns("analysis", "summary.json"))
     lines = (copy / "ledger.jsonl").read_text().splitlines(keepends=True)
     (copy / "ledger.jsonl").write_text("".join(lines[:2]))
-    proc = subprocess.run([*IONWELL, "analyse", str(copy)], capture_output=True, text=True)
+    proc = ionwell("analyse", str(copy))
     assert proc.returncode == 0, proc.stderr
     rows = list(csv.DictReader((copy / "analysis" / "energetics.csv").open()))
     assert [int(r["step"]) for r in rows] == [0, 1]
@@ -213,8 +200,7 @@ def test_rerun_of_finished_campaign_recomputes_nothing(reference):
     root, cfg, _, _ = reference
     paths = CampaignPaths(root / "campaigns" / "tiny")
     before = paths.ledger.read_bytes()
-    proc = _run(cfg, root)
-    assert proc.returncode == 0, proc.stderr[-2000:]
+    run_campaign(cfg, root)
     assert paths.ledger.read_bytes() == before
     events = [json.loads(x) for x in paths.events.read_text().splitlines()]
     assert [e["event"] for e in events].count("started") == 4
@@ -226,7 +212,7 @@ def test_changed_config_is_refused_with_a_diff(reference):
     changed["relax"] = {"enabled": True, "fmax": 0.1, "steps": 2}
     cfg = root / "changed.yaml"
     cfg.write_text(yaml.safe_dump(changed))
-    proc = _run(cfg, root)
+    proc = run_campaign(cfg, root, check=False)
     assert proc.returncode == 2
     assert "refusing" in proc.stderr and "+  fmax: 0.1" in proc.stderr
     assert "Traceback" not in proc.stderr
@@ -241,7 +227,7 @@ def test_second_controller_is_refused(reference, tmp_path):
     lock = ControllerLock(paths.lock)
     lock.acquire()
     try:
-        proc = _run(cfg, root)
+        proc = run_campaign(cfg, root, check=False)
     finally:
         lock.release()
     assert proc.returncode == 2
@@ -269,8 +255,7 @@ def test_sigkill_at_random_moments_then_resume_matches(reference, tmp_path):
         proc.wait()
         kills += 1
     assert kills >= 1
-    final = _run(cfg, root)
-    assert final.returncode == 0, final.stderr[-3000:]
+    run_campaign(cfg, root)
 
     ref, got = _summary(ref_root), _summary(root)
     assert got["guests"] == ref["guests"] and got["outcomes"] == ref["outcomes"]
@@ -292,7 +277,7 @@ def test_sigkill_at_random_moments_then_resume_matches(reference, tmp_path):
         if e["event"] == "started" and e["step"] in recorded_at:
             pytest.fail(f"step {e['step']} started again after it was recorded")
     assert sorted(recorded_at) == [0, 1, 2, 3]
-    v = subprocess.run([*IONWELL, "verify", str(paths.root)], capture_output=True, text=True)
+    v = ionwell("verify", str(paths.root))
     assert v.returncode == 0, v.stderr
 
 
@@ -300,11 +285,12 @@ def test_replay_rederives_every_decision_and_names_an_edited_map(reference, tmp_
     import shutil
 
     from ionwell.audit.replay import replay
+    from ionwell.io.npz import load_npz, save_npz
     from ionwell.science import grid
 
     root, _, _, _ = reference
     src = root / "campaigns" / "tiny"
-    rep = subprocess.run([*IONWELL, "replay", str(src)], capture_output=True, text=True)
+    rep = ionwell("replay", str(src))
     assert rep.returncode == 0, rep.stdout + rep.stderr
     assert all(s.status in ("same", "no decision") for s in replay(src))
 
@@ -314,7 +300,7 @@ def test_replay_rederives_every_decision_and_names_an_edited_map(reference, tmp_
     # recorded choice: the re-derived decision must move there, and replay must say so
     paths = CampaignPaths(copy)
     rec = read_ledger(paths.ledger)[1]
-    pot = grid.load_npz(paths.step(1) / "potential.npz")
+    pot = load_npz(paths.step(1) / "potential.npz")
     chosen = np.array(rec.decision.chosen[0].position)
     other = max(
         rec.decision.candidates[1:], key=lambda s: np.linalg.norm(np.array(s.position) - chosen)
@@ -322,9 +308,9 @@ def test_replay_rederives_every_decision_and_names_an_edited_map(reference, tmp_
     pts = pot.points().reshape(*pot.shape, 3)
     r2 = ((pts - np.array(other.position)) ** 2).sum(axis=-1)
     values = pot.values - 5.0 * np.exp(-r2 / (2 * 0.3**2))
-    grid.save_npz(paths.step(1) / "potential.npz", grid.Grid(pot.origin, pot.axes, values, pot.pbc))
+    save_npz(paths.step(1) / "potential.npz", grid.Grid(pot.origin, pot.axes, values, pot.pbc))
     result = {s.step: s for s in replay(copy)}
     assert result[1].status == "differs"
     assert result[0].status == "same" and result[2].status == "same"
-    rep = subprocess.run([*IONWELL, "replay", str(copy)], capture_output=True, text=True)
+    rep = ionwell("replay", str(copy))
     assert rep.returncode == 1 and "replay: step 1 differs" in rep.stderr

@@ -12,23 +12,17 @@ from __future__ import annotations
 import csv
 import hashlib
 import json
-import subprocess
-import sys
 from pathlib import Path
 
 import pytest
 import yaml
+from shared import ionwell, run_campaign
 
 pytestmark = pytest.mark.slow
 
 pytest.importorskip("tblite")
 
 DEMO = Path(__file__).resolve().parents[2] / "config" / "demo-li-trilayer.yaml"
-IONWELL = [sys.executable, "-m", "ionwell.cli"]
-
-
-def _ionwell(*args: str, timeout: float = 900) -> subprocess.CompletedProcess:
-    return subprocess.run([*IONWELL, *args], capture_output=True, text=True, timeout=timeout)
 
 
 def _digests(folder: Path) -> dict[str, str]:
@@ -55,8 +49,7 @@ def demo(tmp_path_factory) -> tuple[Path, dict]:
     root = tmp_path_factory.mktemp("demo")
     cfg = root / "demo-reduced.yaml"
     cfg.write_text(yaml.safe_dump(data))
-    proc = _ionwell("run", str(cfg), "--root", str(root))
-    assert proc.returncode == 0, proc.stderr[-3000:]
+    run_campaign(cfg, root, timeout=900)
     return root / "campaigns" / "demo-reduced", reference
 
 
@@ -67,7 +60,7 @@ def test_demo_outputs_and_a_reference_added_after_the_run(demo, tmp_path):
     rows = _rows(out / "energetics.csv")
     assert [int(r["guests"]) for r in rows] == [0, 1, 2, 3]
     assert all(r["formation_eV"] == "" for r in rows)
-    status = _ionwell("status", str(camp))
+    status = ionwell("status", camp)
     assert status.returncode == 0, status.stderr
     assert "needs analysis.reference" in status.stdout
 
@@ -93,7 +86,7 @@ def test_demo_outputs_and_a_reference_added_after_the_run(demo, tmp_path):
     frozen = (camp / "campaign.yaml").read_bytes()
     settings = tmp_path / "analysis.yaml"
     settings.write_text(yaml.safe_dump({"reference": reference}))
-    proc = _ionwell("analyse", str(camp), "--settings", str(settings))
+    proc = ionwell("analyse", camp, "--settings", settings, timeout=900)
     assert proc.returncode == 0, proc.stderr[-3000:]
     assert _digests(camp / "steps") == before_steps
     assert (camp / "ledger.jsonl").read_bytes() == before_ledger
@@ -114,11 +107,11 @@ def test_demo_outputs_and_a_reference_added_after_the_run(demo, tmp_path):
     volts = _rows(out / "voltage.csv")
     assert volts and summary["voltages"] == pytest.approx([float(v["voltage_V"]) for v in volts])
     # the status now gives insertion energies against mu
-    status = _ionwell("status", str(camp))
+    status = ionwell("status", camp)
     assert "E_ins per guest against" in status.stdout
 
     # the report shows the filling sequence and names the method
-    rep = _ionwell("report", str(camp))
+    rep = ionwell("report", camp, timeout=900)
     assert rep.returncode == 0, rep.stderr[-2000:]
     html = (out / "report.html").read_text()
     assert "filling" in html.lower()

@@ -22,6 +22,7 @@ from pathlib import Path
 import pytest
 import yaml
 from ase import Atoms
+from shared import IONWELL, ionwell, run_campaign
 
 from ionwell.store.campaign import CampaignPaths
 from ionwell.store.ledger import read_ledger
@@ -29,7 +30,6 @@ from ionwell.store.ledger import read_ledger
 pytestmark = pytest.mark.slow
 
 REPO = Path(__file__).resolve().parents[2]
-IONWELL = [sys.executable, "-m", "ionwell.cli"]
 STEPS = 60
 
 CONFIG = {
@@ -66,14 +66,8 @@ def _config(folder: Path, **changes) -> Path:
     return f
 
 
-def _run(config: Path, root: Path, *extra: str, timeout: float = 600):
-    return subprocess.run(
-        [*IONWELL, "run", str(config), "--root", str(root), *extra],
-        capture_output=True,
-        text=True,
-        timeout=timeout,
-        env=_env(),
-    )
+def _run(config: Path, root: Path, *extra: str, check: bool = False, timeout: float = 600):
+    return run_campaign(config, root, *extra, timeout=timeout, check=check, env=_env())
 
 
 def _fingerprint(root: Path) -> list[tuple]:
@@ -99,8 +93,7 @@ def _fingerprint(root: Path) -> list[tuple]:
 def uninterrupted(tmp_path_factory):
     root = tmp_path_factory.mktemp("long-plain")
     cfg = _config(root)
-    proc = _run(cfg, root, "--window", "25")
-    assert proc.returncode == 0, proc.stderr[-3000:]
+    proc = _run(cfg, root, "--window", "25", check=True)
     return root, cfg, proc
 
 
@@ -112,9 +105,7 @@ def test_sixty_steps_reach_the_stop_rule(uninterrupted):
     # progress lines say step k of at most N; Snakemake's own chatter is held back
     assert f"of ≤{STEPS} recorded" in proc.stderr
     assert "Select jobs to execute" not in proc.stderr
-    v = subprocess.run(
-        [*IONWELL, "verify", str(root / "campaigns" / "long")], capture_output=True, text=True
-    )
+    v = ionwell("verify", str(root / "campaigns" / "long"))
     assert v.returncode == 0, v.stderr
 
 
@@ -139,8 +130,7 @@ def test_random_sigkills_then_resume_give_the_same_ledger(uninterrupted, tmp_pat
         if ledger.exists() and read_ledger(ledger) and read_ledger(ledger)[-1].outcome == "stop":
             break
     assert kills >= 3, "the campaign finished before it could be interrupted"
-    done = _run(cfg, tmp_path, "--window", "7")
-    assert done.returncode == 0, done.stderr[-3000:]
+    _run(cfg, tmp_path, "--window", "7", check=True)
     assert _fingerprint(tmp_path) == _fingerprint(root0)
     # no step ran twice to completion: one "recorded" event per step
     events = (tmp_path / "campaigns" / "long" / "events.jsonl").read_text().splitlines()
@@ -151,8 +141,7 @@ def test_random_sigkills_then_resume_give_the_same_ledger(uninterrupted, tmp_pat
 def test_nothing_to_do_on_a_finished_campaign(uninterrupted):
     root, cfg, _ = uninterrupted
     before = CampaignPaths(root / "campaigns" / "long").ledger.read_bytes()
-    proc = _run(cfg, root)
-    assert proc.returncode == 0, proc.stderr[-2000:]
+    proc = _run(cfg, root, check=True)
     assert "state: finished" in proc.stdout
     assert CampaignPaths(root / "campaigns" / "long").ledger.read_bytes() == before
 
@@ -160,8 +149,7 @@ def test_nothing_to_do_on_a_finished_campaign(uninterrupted):
 def _short(tmp_path: Path, steps: int = 3) -> tuple[Path, CampaignPaths]:
     """A campaign stopped by max_steps after ``steps`` steps (ledger as left by the run)."""
     cfg = _config(tmp_path, stop={"guests": 50, "max_steps": steps})
-    proc = _run(cfg, tmp_path)
-    assert proc.returncode == 0, proc.stderr[-2000:]
+    _run(cfg, tmp_path, check=True)
     return cfg, CampaignPaths(tmp_path / "campaigns" / "long")
 
 
@@ -191,10 +179,10 @@ def test_broken_chain_is_refused_by_run_and_status_naming_the_record(tmp_path):
     lines[1] = json.dumps(rec) + "\n"
     paths.ledger.write_text("".join(lines))
     for argv in (["run", str(cfg), "--root", str(tmp_path)], ["status", str(paths.root)]):
-        proc = subprocess.run([*IONWELL, *argv], capture_output=True, text=True, env=_env())
+        proc = ionwell(*argv, env=_env())
         assert proc.returncode == 2, proc.stderr
         assert "step 1 (line 2): record was edited" in proc.stderr
-    v = subprocess.run([*IONWELL, "verify", str(paths.root)], capture_output=True, text=True)
+    v = ionwell("verify", str(paths.root))
     assert v.returncode == 1 and "step 1" in v.stderr
 
 
@@ -203,7 +191,7 @@ def test_hand_edited_frozen_config_or_host_is_refused_and_named(tmp_path, name):
     cfg, paths = _short(tmp_path)
     f = paths.root / name
     f.write_text(f.read_text() + "\n")  # same meaning, other bytes: still refused
-    v = subprocess.run([*IONWELL, "verify", str(paths.root)], capture_output=True, text=True)
+    v = ionwell("verify", str(paths.root))
     assert v.returncode == 1 and name in v.stderr
     if name == "host.extxyz":
         _cut_back(paths, 2)
@@ -216,8 +204,7 @@ def test_corrupted_database_mirror_is_rebuilt_and_the_campaign_finishes(tmp_path
     cfg, paths = _short(tmp_path, steps=4)
     _cut_back(paths, 2)
     paths.database.write_bytes(b"this is not a database" * 100)
-    proc = _run(cfg, tmp_path)
-    assert proc.returncode == 0, proc.stderr[-2000:]
+    _run(cfg, tmp_path, check=True)
     from ase.db import connect
 
     assert sorted(r.step for r in connect(paths.database).select()) == [0, 1, 2, 3, 4]
@@ -229,8 +216,7 @@ def test_empty_controller_lock_left_by_a_kill_is_recovered(tmp_path):
     paths.lock.write_text("")
     old = time.time() - 60
     os.utime(paths.lock, (old, old))
-    proc = _run(cfg, tmp_path)
-    assert proc.returncode == 0, proc.stderr[-2000:]
+    _run(cfg, tmp_path, check=True)
     assert len(read_ledger(paths.ledger)) == 4
 
 
@@ -283,10 +269,10 @@ def test_raising_the_stop_rule_extends_a_finished_campaign(tmp_path):
     and the steps after it are the same."""
     straight = tmp_path / "straight"
     cfg = _config(straight, stop={"guests": 5, "max_steps": 50})
-    assert _run(cfg, straight).returncode == 0
+    _run(cfg, straight, check=True)
     ext = tmp_path / "extended"
     cfg = _config(ext, stop={"guests": 3, "max_steps": 50})
-    assert _run(cfg, ext).returncode == 0
+    _run(cfg, ext, check=True)
     cfg = _config(ext, stop={"guests": 5, "max_steps": 50})
     # plain Snakemake parses read-only: it refuses and says how to record the change
     dry = [
@@ -295,8 +281,7 @@ def test_raising_the_stop_rule_extends_a_finished_campaign(tmp_path):
     ]  # fmt: skip
     proc = subprocess.run(dry, capture_output=True, text=True, env=_env())
     assert proc.returncode != 0 and "records that amendment" in proc.stderr + proc.stdout
-    proc = _run(cfg, ext)
-    assert proc.returncode == 0, proc.stderr[-3000:]
+    proc = _run(cfg, ext, check=True)
     assert "stop amended" in proc.stdout and "extending 'long' after step 3" in proc.stdout
     a, b = _fingerprint(straight), _fingerprint(ext)
     assert [f[:5] for f in b] == [f[:5] for f in a[:3]] + [
@@ -309,7 +294,7 @@ def test_raising_the_stop_rule_extends_a_finished_campaign(tmp_path):
     assert [tuple(s["position"]) for s in handed["chosen"]] == a[3][5]
     root = str(ext / "campaigns" / "long")
     for cmd in ("verify", "replay"):
-        v = subprocess.run([*IONWELL, cmd, root], capture_output=True, text=True, env=_env())
+        v = ionwell(cmd, root, env=_env())
         assert v.returncode == 0, v.stdout + v.stderr
     amended = (ext / "campaigns" / "long" / "amendments.jsonl").read_text().splitlines()
     assert len(amended) == 1 and json.loads(amended[0])["after_step"] == 3
@@ -322,9 +307,7 @@ def test_raising_the_stop_rule_extends_a_finished_campaign(tmp_path):
 def test_prune_keeps_digests_and_verify_and_replay_say_what_they_checked(tmp_path):
     cfg, paths = _short(tmp_path, steps=5)
     before = sum(f.stat().st_size for f in paths.steps.rglob("*") if f.is_file())
-    proc = subprocess.run(
-        [*IONWELL, "prune", str(paths.root), "--keep", "2"], capture_output=True, text=True
-    )
+    proc = ionwell("prune", str(paths.root), "--keep", "2")
     assert proc.returncode == 0, proc.stderr
     assert "of 4 steps (0–3)" in proc.stdout
     for n in range(6):
@@ -332,14 +315,14 @@ def test_prune_keeps_digests_and_verify_and_replay_say_what_they_checked(tmp_pat
         assert (paths.step(n) / "decision.json").exists() == (n < 5)  # the wells table stays
     after = sum(f.stat().st_size for f in paths.steps.rglob("*") if f.is_file())
     assert after < before
-    v = subprocess.run([*IONWELL, "verify", str(paths.root)], capture_output=True, text=True)
+    v = ionwell("verify", str(paths.root))
     assert v.returncode == 0, v.stderr
-    r = subprocess.run([*IONWELL, "replay", str(paths.root)], capture_output=True, text=True)
+    r = ionwell("replay", str(paths.root))
     assert r.returncode == 0, r.stderr
     assert "could not be checked fully (maps pruned): steps 0–3" in r.stdout
     # a pruned map that is then also deleted from the list is named as missing
     (paths.step(1) / "pruned.json").unlink()
-    v = subprocess.run([*IONWELL, "verify", str(paths.root)], capture_output=True, text=True)
+    v = ionwell("verify", str(paths.root))
     assert v.returncode == 1 and "steps/0001/potential.npz" in v.stderr
 
 
@@ -356,8 +339,7 @@ def test_screened_rule_computes_each_candidate_as_its_own_job(tmp_path):
         placement={**CONFIG["placement"], "rule": "screened", "screen": {"top": 3}},
         stop={"guests": 3, "max_steps": 3},
     )
-    proc = _run(cfg, tmp_path, "--cores", "2")
-    assert proc.returncode == 0, proc.stderr[-3000:]
+    _run(cfg, tmp_path, "--cores", "2", check=True)
     paths = CampaignPaths(tmp_path / "campaigns" / "long")
     recs = read_ledger(paths.ledger)
     assert [r.guests for r in recs] == [0, 1, 2, 3]
@@ -378,9 +360,7 @@ def test_screened_rule_computes_each_candidate_as_its_own_job(tmp_path):
             assert e == pytest.approx(trial.get_potential_energy(), abs=1e-6)
         best = min(range(3), key=lambda i: energies[i])
         assert rec.decision.chosen[0].position == rec.decision.candidates[best].position
-    r = subprocess.run(
-        [*IONWELL, "replay", str(paths.root)], capture_output=True, text=True, env=_env()
-    )
+    r = ionwell("replay", str(paths.root), env=_env())
     assert r.returncode == 0, r.stdout + r.stderr
 
 
@@ -396,8 +376,7 @@ def test_collect_and_assess_rerun_without_recomputing(tmp_path):
     engine_out = paths.step(last.step) / "engine" / "output.json"
     mtime = engine_out.stat().st_mtime_ns
     events = paths.events.read_text().count('"started"')
-    proc = _run(cfg, tmp_path)
-    assert proc.returncode == 0, proc.stderr[-2000:]
+    _run(cfg, tmp_path, check=True)
     assert paths.events.read_text().count('"started"') == events  # no compute started
     assert engine_out.stat().st_mtime_ns == mtime
     again = read_ledger(paths.ledger)[-1]

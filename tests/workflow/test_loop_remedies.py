@@ -3,11 +3,8 @@ configured remedy, and the retry is recorded in the ledger."""
 
 from __future__ import annotations
 
-import subprocess
-import sys
-
 import pytest
-import yaml
+from shared import run_campaign
 
 from ionwell.store.campaign import CampaignPaths
 from ionwell.store.ledger import read_ledger
@@ -28,15 +25,7 @@ def test_scf_retry_with_more_cycles_is_recorded(tmp_path):
         "remedies": {"scf": ["more_cycles"], "more_cycles": 100},
         "stop": {"max_steps": 0},
     }
-    f = tmp_path / "remedy.yaml"
-    f.write_text(yaml.safe_dump(cfg))
-    proc = subprocess.run(
-        [sys.executable, "-m", "ionwell.cli", "run", str(f), "--root", str(tmp_path)],
-        capture_output=True,
-        text=True,
-        timeout=600,
-    )
-    assert proc.returncode == 0, proc.stderr[-3000:]
+    run_campaign(cfg, tmp_path, timeout=600)
     (rec,) = read_ledger(CampaignPaths(tmp_path / "campaigns" / "remedy").ledger)
     assert rec.scf_converged
     assert rec.remedies == ["SCF retry with max_cycle 100: converged"]

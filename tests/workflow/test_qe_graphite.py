@@ -14,8 +14,6 @@ import logging
 import os
 import re
 import shutil
-import subprocess
-import sys
 import time
 from pathlib import Path
 
@@ -24,6 +22,7 @@ import pytest
 import yaml
 from ase.geometry import get_distances
 from ase.io import read
+from shared import ionwell, run_campaign
 
 from ionwell.config.definitions import find_definition
 
@@ -112,17 +111,9 @@ def test_lithium_into_periodic_ab_graphite(tmp_path):
     from ionwell.store.ledger import read_ledger
 
     data = yaml.safe_load(EXAMPLE.read_text())
-    cfg = tmp_path / "graphite.yaml"
-    cfg.write_text(yaml.safe_dump(data, allow_unicode=True))
     t0 = time.monotonic()
-    proc = subprocess.run(
-        [sys.executable, "-m", "ionwell.cli", "run", str(cfg), "--root", str(tmp_path)],
-        capture_output=True,
-        text=True,
-        timeout=900,
-    )
+    run_campaign(data, tmp_path, timeout=900)
     total = time.monotonic() - t0
-    assert proc.returncode == 0, proc.stdout[-3000:] + proc.stderr[-3000:]
     root = tmp_path / "campaigns" / data["name"]
     recs = read_ledger(CampaignPaths(root).ledger)
     for r in recs:
@@ -199,12 +190,7 @@ def test_lithium_into_periodic_ab_graphite(tmp_path):
     assert ((d_plain >= limits[None, :]).all(axis=1)).any()
 
     # 3. the analysis: stage and registry of the periodic host (analysis.json, layers.csv)
-    proc = subprocess.run(
-        [sys.executable, "-m", "ionwell.cli", "analyse", str(root)],
-        capture_output=True,
-        text=True,
-        timeout=300,
-    )
+    proc = ionwell("analyse", root, timeout=300)
     assert proc.returncode == 0, proc.stdout[-3000:] + proc.stderr[-3000:]
     summary = json.loads((root / "analysis" / "analysis.json").read_text())
     by_step = {s["step"]: s for s in summary["layers"]}

@@ -8,8 +8,9 @@ The module has three parts:
 * reading (I/O): :func:`gather_campaign` brings a campaign's analysis up to date (running
   :func:`ionwell.analysis.tables.analyse` when ``analysis/analysis.json`` is missing or older than the
   ledger) and collects everything the page shows into a :class:`CampaignReport`;
-* figures: :func:`comparison_figures` draws the comparison plots of several campaigns in memory
-  (matplotlib's Agg canvas, no files, no global backend switch);
+* comparison figures: :func:`comparison_figures` takes the numbers of several campaigns from
+  their tables and has :mod:`ionwell.analysis.plots.charts` draw them in memory (no files); this
+  module draws nothing itself;
 * HTML builders: pure functions from those models to strings (:func:`render_page` and the
   ``render_*`` helpers below it).
 
@@ -33,6 +34,7 @@ from pathlib import Path
 from pydantic import BaseModel, Field, ValidationError
 
 import ionwell
+from ionwell.analysis.plots import charts
 from ionwell.analysis.tables import AnalysisSummary, analyse, is_current
 from ionwell.audit.status import CampaignStatus, campaign_status
 from ionwell.errors import IonwellError
@@ -361,7 +363,7 @@ def write_report(campaigns: Sequence[str | Path], output: str | Path | None = No
 
 
 # ---------------------------------------------------------------------------------------------
-# comparison figures (in memory)
+# comparison figures: the numbers (drawn by ionwell.analysis.plots.charts, in memory)
 
 
 def _floats(table: Table | None, column: str) -> list[float | None]:
@@ -377,98 +379,72 @@ def _floats(table: Table | None, column: str) -> list[float | None]:
     return out
 
 
-def _png_figure(fig, name: str, caption: str) -> Figure:
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-
-    FigureCanvasAgg(fig)
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png")
-    made = _figure_from_bytes(name, caption, buf.getvalue())
-    assert made is not None  # matplotlib writes PNG
+def _png_figure(data: bytes, name: str, caption: str) -> Figure:
+    made = _figure_from_bytes(name, caption, data)
+    assert made is not None  # the charts write PNG
     return made
+
+
+def _points(rep: CampaignReport) -> list[tuple[float, float, bool]]:
+    """``(x, formation energy eV, on the hull)`` of every step with both numbers."""
+    t = rep.table("energetics.csv")
+    xs, efs, hull = _floats(t, "x"), _floats(t, "formation_eV"), _floats(t, "on_hull")
+    return [
+        (x, e, bool(h))
+        for x, e, h in zip(xs, efs, hull or [0.0] * len(xs), strict=False)
+        if x is not None and e is not None
+    ]
+
+
+def _voltage_steps(rep: CampaignReport) -> list[tuple[float, float, float]]:
+    """``(x_from, x_to, voltage V)`` of every complete row of the campaign's voltage table."""
+    t = rep.table("voltage.csv")
+    return [
+        (a, b, v)
+        for a, b, v in zip(
+            _floats(t, "x_from"), _floats(t, "x_to"), _floats(t, "voltage_V"), strict=False
+        )
+        if a is not None and b is not None and v is not None
+    ]
 
 
 def comparison_figures(reports: Sequence[CampaignReport]) -> tuple[list[Figure], list[str]]:
     """Formation energy against x (with each hull) and the voltage profiles of several
-    campaigns, one colour per campaign; and notes on campaigns left out of them."""
-    from matplotlib.figure import Figure as MplFigure
-
-    # colour, marker and line style all change per campaign, so overlapping curves stay apart
-    styles = [
-        (f"C{i % 10}", "osD^v<>ph*"[i % 10], ("-", "--", "-.", ":")[i % 4])
-        for i in range(len(reports))
-    ]
+    campaigns, one style per campaign (drawn by :mod:`ionwell.analysis.plots.charts`); and
+    notes on campaigns left out of them."""
     notes: list[str] = []
-    formation = []
-    for rep, style in zip(reports, styles, strict=True):
-        t = rep.table("energetics.csv")
-        xs, efs, hull = _floats(t, "x"), _floats(t, "formation_eV"), _floats(t, "on_hull")
-        pts = [
-            (x, e, bool(h))
-            for x, e, h in zip(xs, efs, hull or [0.0] * len(xs), strict=False)
-            if x is not None and e is not None
-        ]
+    compared: list[charts.ComparedCampaign] = []
+    for slot, rep in enumerate(reports):
+        pts = _points(rep)
         if not pts:
             notes.append(
                 f"{rep.name}: no formation energies (no guest reference in its config); "
                 "left out of the comparison plots"
             )
             continue
-        formation.append((rep, style, pts))
+        compared.append(charts.ComparedCampaign(rep.name, slot, pts, _voltage_steps(rep)))
     figures: list[Figure] = []
-    if not formation:
+    if not compared:
         notes.append("no campaign has formation energies: the comparison plots are not drawn")
         return figures, notes
-
-    fig = MplFigure(figsize=(7, 4.5), dpi=110)
-    ax = fig.add_subplot()
-    for rep, (colour, marker, ls), pts in formation:
-        on = sorted((x, e) for x, e, h in pts if h)
-        ax.plot([p[0] for p in on], [p[1] for p in on], ls, color=colour, lw=1.5, alpha=0.8)
-        ax.scatter([x for x, _, h in pts if h], [e for _, e, h in pts if h], s=36, color=colour,
-                   marker=marker, zorder=3, label=rep.name)  # fmt: skip
-        ax.scatter([x for x, _, h in pts if not h], [e for _, e, h in pts if not h], s=36,
-                   marker=marker, facecolors="none", edgecolors=colour, zorder=3)  # fmt: skip
-    ax.axhline(0.0, color="0.8", lw=0.8)
-    ax.set_xlabel("x (guests per host formula unit)")
-    ax.set_ylabel("formation energy / eV")
-    ax.set_title("Formation energy and lower hull per campaign (model results)")
-    ax.text(0.99, 0.01, "filled: on the hull, open: above it", transform=ax.transAxes,
-            ha="right", va="bottom", fontsize="x-small", color="0.4")  # fmt: skip
-    ax.legend(frameon=False, fontsize="small")
-    fig.tight_layout()
     figures.append(
-        _png_figure(fig, "compare_formation.png", "Formation energy against x, hull drawn")
+        _png_figure(
+            charts.formation_comparison(compared),
+            "compare_formation.png",
+            "Formation energy against x, hull drawn",
+        )
     )
-
-    fig = MplFigure(figsize=(7, 4.5), dpi=110)
-    ax = fig.add_subplot()
-    drawn = 0
-    for rep, (colour, _, ls), _ in formation:
-        t = rep.table("voltage.csv")
-        segs = [
-            (a, b, v)
-            for a, b, v in zip(
-                _floats(t, "x_from"), _floats(t, "x_to"), _floats(t, "voltage_V"), strict=False
+    for c in compared:
+        if not c.voltage:
+            notes.append(f"{c.name}: fewer than two hull vertices, so no voltage step to plot")
+    if any(c.voltage for c in compared):
+        figures.append(
+            _png_figure(
+                charts.voltage_comparison(compared),
+                "compare_voltage.png",
+                "Voltage step profile against x",
             )
-            if a is not None and b is not None and v is not None
-        ]
-        if not segs:
-            notes.append(f"{rep.name}: fewer than two hull vertices, so no voltage step to plot")
-            continue
-        drawn += 1
-        for k, (a, b, v) in enumerate(segs):
-            ax.plot([a, b], [v, v], ls, color=colour, lw=2, alpha=0.85,
-                    label=rep.name if k == 0 else None)  # fmt: skip
-        for (_, b, v0), (_, _, v1) in zip(segs[:-1], segs[1:], strict=True):
-            ax.plot([b, b], [v0, v1], color=colour, lw=0.8, ls=":")
-    if drawn:
-        ax.set_xlabel("x (guests per host formula unit)")
-        ax.set_ylabel("voltage / V")
-        ax.set_title("Voltage profile per campaign (model results)")
-        ax.legend(frameon=False, fontsize="small")
-        fig.tight_layout()
-        figures.append(_png_figure(fig, "compare_voltage.png", "Voltage step profile against x"))
+        )
     return figures, notes
 
 

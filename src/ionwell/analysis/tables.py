@@ -17,8 +17,10 @@ finished campaign or one still running — and writes into ``analysis/``:
 * ``analysis.json``, the :class:`AnalysisSummary` listing the files in reading order, with
   the stage and the stacking registries of every step of a layered host (:class:`StepLayers`).
 
-The numbers come from pure modules (:mod:`ionwell.science.energetics`, :mod:`ionwell.science.diagnostics`,
-:mod:`ionwell.science.dos`), the figures from :mod:`ionwell.analysis.plots`; this module reads and writes.
+The numbers come from pure modules (:mod:`ionwell.science.energetics`,
+:mod:`ionwell.science.diagnostics`, :mod:`ionwell.science.dos`); the figures are drawn by
+:mod:`ionwell.analysis.plots` (charts and structure pictures). This module reads and writes; it
+draws nothing itself.
 """
 
 from __future__ import annotations
@@ -35,7 +37,7 @@ from ase import Atoms
 from ase.io import read
 from pydantic import BaseModel, ValidationError
 
-from ionwell.analysis import plots
+from ionwell.analysis.plots import charts
 from ionwell.config.campaign import AnalysisConfig, format_validation_error, read_yaml
 from ionwell.engines.base import StepResult
 from ionwell.errors import ConfigError, IonwellError
@@ -410,8 +412,8 @@ def analyse(root: str | Path, settings: AnalysisConfig | None = None) -> Analysi
             [[s.n_from, s.n_to, f"{s.x_from:.6f}", f"{s.x_to:.6f}", f"{s.voltage:.6f}"]
              for s in steps],
         )  # fmt: skip
-        plots.hull_plot(out / "hull.png", campaign.guest.element, x, ef, h, unit, caution=caution)
-        plots.voltage_plot(
+        charts.hull_plot(out / "hull.png", campaign.guest.element, x, ef, h, unit, caution=caution)
+        charts.voltage_plot(
             out / "voltage.png", campaign.guest.element, steps, unit, z, caution=caution
         )
         files += ["hull.png", "voltage.png", "voltage.csv"]
@@ -563,8 +565,8 @@ def _step_tables(
               _fmt(g.centred_fraction, ".3f"), g.registry_atoms, _fmt(d.stage, "d"),
               d.staging or ""] for d in layered for g in d.galleries],
         )  # fmt: skip
-        plots.occupancy_map(out / "occupancy_map.png", layered, caution=caution)
-        plots.stacking_plot(out / "stacking.png", layered, caution=caution)
+        charts.occupancy_map(out / "occupancy_map.png", layered, caution=caution)
+        charts.stacking_plot(out / "stacking.png", layered, caution=caution)
         files += ["occupancy_map.png", "stacking.png", "layers.csv"]
 
     site_rows = []
@@ -581,7 +583,7 @@ def _step_tables(
         site_rows,
     )  # fmt: skip
     if any(d.rim_guests is not None for d in diags) and any(d.guests for d in diags):
-        plots.rim_plot(out / "rim.png", diags, cfg.rim_width, caution=caution)
+        charts.rim_plot(out / "rim.png", diags, cfg.rim_width, caution=caution)
         files.append("rim.png")
     files.append("sites.csv")
 
@@ -596,7 +598,7 @@ def _step_tables(
               _fmt(d.host_electrons_gained_rim if interior else None),
               _fmt(d.host_electrons_gained_interior if interior else None)] for d in diags],
         )  # fmt: skip
-        plots.charges_plot(
+        charts.charges_plot(
             out / "charges.png", diags, scheme=scheme, interior=interior, caution=caution
         )
         files += ["charges.png", "charges.csv"]
@@ -637,7 +639,7 @@ def _step_tables(
 def _views(out: Path, campaign, records, frames: list[Atoms], diags, n_host: int, caution: str):
     """Per-step structure views (drawn once per step: a view newer than the step's structure
     is kept) and the filling-sequence figure of up to eight steps."""
-    from ionwell.analysis import views
+    from ionwell.analysis.plots import structures
 
     folder = out / "structures"
     folder.mkdir(exist_ok=True)
@@ -650,7 +652,7 @@ def _views(out: Path, campaign, records, frames: list[Atoms], diags, n_host: int
         src = StepPaths(CampaignPaths(out.parent).step(r.step)).relaxed
         fresh = target.is_file() and src.is_file() and target.stat().st_mtime >= src.stat().st_mtime
         if not fresh:
-            views.structure_view(
+            structures.structure_view(
                 target,
                 atoms,
                 n_host,
@@ -664,10 +666,10 @@ def _views(out: Path, campaign, records, frames: list[Atoms], diags, n_host: int
         names.append(name)
     if not any(d.guests for d in diags):
         return names, None
-    pick = set(views.select_frames([r.step for r in records]))
+    pick = set(structures.select_frames([r.step for r in records]))
     chosen = [(r.step, a, d) for r, a, d in zip(records, frames, diags, strict=True)
               if r.step in pick]  # fmt: skip
-    views.filling_sequence(
+    structures.filling_sequence(
         out / "filling.png",
         [(s, a) for s, a, _ in chosen],
         n_host,
@@ -708,5 +710,5 @@ def _dos(out: Path, records, results: list[StepResult], diags, width: float, cau
         [[f"{energies[i]:.4f}", *[f"{c[i]:.5f}" for c in columns]]
          for i in range(len(energies))],
     )  # fmt: skip
-    plots.dos_plot(out / "dos.png", energies, curves, width, name, caution=caution)
+    charts.dos_plot(out / "dos.png", energies, curves, width, name, caution=caution)
     return ["dos.png", "dos.csv"]

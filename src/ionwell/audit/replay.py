@@ -15,6 +15,7 @@ from ase.io import read
 from pydantic import BaseModel
 
 from ionwell.errors import IonwellError
+from ionwell.io.npz import load_npz
 from ionwell.science import grid, placement
 from ionwell.store.campaign import CampaignPaths, load_frozen
 from ionwell.store.ledger import read_ledger
@@ -131,7 +132,7 @@ def replay(root: str | Path) -> list[ReplayStep]:
                 )
                 continue
             if periodic_host and prev_map.exists():
-                periodic = grid.load_npz(prev_map)
+                periodic = load_npz(prev_map)
             why = _fallback_message(paths, campaign, prev, rec, n_host, periodic)
             if why is not None:
                 out.append(ReplayStep(step=rec.step, status="differs", message=why))
@@ -153,7 +154,7 @@ def replay(root: str | Path) -> list[ReplayStep]:
             )
             continue
         try:
-            pot = grid.load_npz(sp.potential)
+            pot = load_npz(sp.potential)
             atoms = read(sp.relaxed)
         except (OSError, ValueError, IonwellError) as err:
             out.append(ReplayStep(step=rec.step, status="cannot replay", message=str(err)))

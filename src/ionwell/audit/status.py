@@ -190,7 +190,7 @@ def _pace(campaign, records) -> dict:
     if last.outcome == "stop":
         out["remaining_steps"] = 0
         return out
-    per_step = max(1, campaign.placement.per_step)
+    per_step = campaign.placement.per_step
     left = [campaign.stop.max_steps - last.step]
     if campaign.stop.guests is not None:
         left.append(-(-(campaign.stop.guests - last.guests) // per_step))

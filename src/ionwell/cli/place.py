@@ -9,7 +9,7 @@ The map is a Gaussian cube or XSF file (atoms taken from it unless ``--structure
 which must then be the map's atoms), a ``.npy``/``.npz`` array with its JSON sidecar, or a
 ``.npz`` grid written by ionwell (then ``--structure`` is required). Maps and structures are read
 and checked by the campaign's own readers (:func:`ionwell.io.maps.read_map`,
-:func:`ionwell.science.host.read_structure`); a map whose header says it holds a density or an orbital
+:func:`ionwell.io.structures.read_structure`); a map whose header says it holds a density or an orbital
 is refused unless ``--assume-potential`` is given. Positions are printed in Å in the
 map's own Cartesian frame, potentials in volts. The choice is made by
 :func:`ionwell.science.placement.decide` with the settings a campaign would use, so what this command
@@ -49,36 +49,16 @@ _OPTION = {
 
 
 def _exclusion_item(text: str) -> tuple[str, float]:
+    """argparse type: ``ELEMENT=ANGSTROM`` as a pair (element and distance are the settings
+    model's to check)."""
     el, sep, value = text.partition("=")
     try:
         radius = float(value)
     except ValueError:
-        radius = math.nan
-    if not sep or not el.strip() or not (math.isfinite(radius) and radius > 0):
-        raise argparse.ArgumentTypeError(
-            f"expected ELEMENT=ANGSTROM with a positive distance, e.g. C=1.6; got {text!r}"
-        )
+        sep = ""
+    if not sep or not el.strip():
+        raise argparse.ArgumentTypeError(f"expected ELEMENT=ANGSTROM, e.g. C=1.6; got {text!r}")
     return el.strip(), radius
-
-
-def _positive(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        value = math.nan
-    if not (math.isfinite(value) and value > 0):
-        raise argparse.ArgumentTypeError(f"expected a positive distance in Å, got {text!r}")
-    return value
-
-
-def _kelvin(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        value = math.nan
-    if not (math.isfinite(value) and value >= 0):
-        raise argparse.ArgumentTypeError(f"expected a temperature of at least 0 K, got {text!r}")
-    return value
 
 
 def _axes(text: str) -> tuple[bool, bool, bool]:
@@ -161,7 +141,7 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
     p.add_argument(
         "--within",
         metavar="ANGSTROM",
-        type=_positive,
+        type=float,
         default=3.0,
         help="envelope: a site must lie within this distance of some atom (default: 3.0)",
     )
@@ -196,21 +176,21 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
     p.add_argument(
         "--count",
         metavar="N",
-        type=positive_count,
+        type=int,
         default=1,
         help="how many guests to place, at wells at least --separation apart (default: 1)",
     )
     p.add_argument(
         "--separation",
         metavar="ANGSTROM",
-        type=_positive,
+        type=float,
         default=2.5,
         help="minimum distance between guests placed together, Å (default: 2.5)",
     )
     p.add_argument(
         "--temperature",
         metavar="K",
-        type=_kelvin,
+        type=float,
         default=300.0,
         help="temperature of the thermal rule, K; 0 gives the deepest well (default: 300)",
     )
@@ -231,7 +211,7 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
     p.add_argument(
         "--wells",
         metavar="N",
-        type=positive_count,
+        type=int,
         default=10,
         help="how many wells to list (default: 10)",
     )
@@ -243,14 +223,16 @@ def add_parser(subparsers: argparse._SubParsersAction) -> argparse.ArgumentParse
 def _load(args: argparse.Namespace) -> tuple[gridmod.Grid, Atoms, str]:
     """The grid in the potential convention, its atoms, and the convention it was read in.
 
-    Through the campaign's readers and checks: :func:`ionwell.science.host.read_structure` for
+    Through the campaign's readers and checks: :func:`ionwell.io.structures.read_structure` for
     ``--structure``, :func:`ionwell.io.maps.read_map` for the map (which refuses a structure
     that is not the map's own atoms, moved by one shift at most), the map's own atoms checked
     as a structure file's are.
     """
     from ionwell.config.engines import PotentialSpec
     from ionwell.io.maps import SUFFIXES, not_a_potential, read_map, sidecar_path
-    from ionwell.science.host import check_atoms, read_structure
+    from ionwell.io.npz import load_npz
+    from ionwell.io.structures import read_structure
+    from ionwell.science.host import check_atoms
 
     path = Path(args.potential)
     atoms = read_structure(Path(args.structure)) if args.structure else None
@@ -259,7 +241,7 @@ def _load(args: argparse.Namespace) -> tuple[gridmod.Grid, Atoms, str]:
         # a grid stored by ionwell (a step's potential.npz), in the potential convention
         if atoms is None:
             raise GridError(f"{path}: a .npz grid holds no atoms; give them with --structure FILE")
-        grid, atoms = _periodicity(args, gridmod.load_npz(path), atoms)
+        grid, atoms = _periodicity(args, load_npz(path), atoms)
         sign = "potential" if args.sign == "auto" else args.sign
         return gridmod.orient(grid, atoms, sign), atoms, sign
     if fmt in ("npy", "npz") and atoms is None:
@@ -294,10 +276,8 @@ def _periodicity(args: argparse.Namespace, grid: gridmod.Grid, atoms: Atoms):
     """The grid's periodicity: stated with ``--periodic`` (the atoms then get the grid's cell
     on those axes, so exclusion uses the minimum image), else taken from a periodic structure
     whose cell the grid spans."""
-    from ionwell.io.maps import periodic_like, with_periodicity
-
     if args.periodic is not None:
-        grid = with_periodicity(grid, args.periodic)
+        grid = gridmod.with_periodicity(grid, args.periodic)
         if any(args.periodic):
             atoms = atoms.copy()
             cell = atoms.cell.array.copy()
@@ -307,12 +287,16 @@ def _periodicity(args: argparse.Namespace, grid: gridmod.Grid, atoms: Atoms):
             atoms.cell = cell
             atoms.pbc = [bool(a) or bool(b) for a, b in zip(atoms.pbc, args.periodic, strict=True)]
     elif atoms.pbc.any():
-        grid = periodic_like(grid, atoms)
+        grid = gridmod.periodic_like(grid, atoms)
     return grid, atoms
 
 
 def _settings(args: argparse.Namespace) -> PlacementConfig:
-    """The placement settings the options describe (the map is already oriented)."""
+    """The placement settings the options describe (the map is already oriented).
+
+    The settings model checks the numbers (its limits are a campaign's); a value it refuses is
+    one PlacementError naming the option.
+    """
     elements = [el for el, _ in args.exclusion]
     twice = sorted({el for el in elements if elements.count(el) > 1})
     if twice:
@@ -337,6 +321,8 @@ def _settings(args: argparse.Namespace) -> PlacementConfig:
         for e in err.errors():
             field = str(e["loc"][0]) if e["loc"] else ""
             msg = e["msg"].removeprefix("Value error, ")
+            if e["type"] != "value_error":
+                msg += f", got {e['input']!r}"
             lines.append(f"{_OPTION.get(field, field or 'options')}: {msg}")
         raise PlacementError("; ".join(lines)) from None
 

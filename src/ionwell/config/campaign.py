@@ -391,6 +391,11 @@ class ChecksConfig(_Model):
         5, ge=2, le=1000, description="warn when at least this many wells tie with the deepest"
     )
 
+    def envelope_for(self, within: float) -> float:
+        """The distance (Å) beyond which a guest is reported outside the host: ``envelope``, by
+        default 1 Å beyond the placement envelope ``within`` (Å)."""
+        return self.envelope if self.envelope is not None else within + 1.0
+
 
 class RemedyConfig(_Model):
     """What the loop tries before a failed check stops the campaign (each try is recorded)."""
@@ -753,7 +758,7 @@ def config_diff(old: Campaign, new: Campaign) -> str:
 
 
 #: An engine given by the name of its definition plus overrides (``engine: {definition:
-#: quantum-espresso, settings: {...}}``), merged by ``engine_definitions.resolve_engines``
+#: quantum-espresso, settings: {...}}``), merged by ``config.definitions.resolve_engines``
 #: before the models see it; the overrides are checked then, against the merged engine.
 _DEFINITION_REF = {
     "type": "object",

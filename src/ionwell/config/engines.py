@@ -205,11 +205,16 @@ class PyscfEngineConfig(_Model):
     conv_tol: float = Field(1e-8, gt=0.0, lt=1e-2, description="SCF energy tolerance, hartree")
     level_shift: float = Field(0.0, ge=0.0, description="SCF level shift, hartree")
     smearing: float = Field(0.0, ge=0.0, description="Fermi smearing width, eV (0: none)")
-    # off by default: measured with bench/warm_start.py (benzene bilayer + Li, LDA/STO-3G) it
-    # saved 0-25 % of the SCF iterations, and once (neutral Li, step 2) it converged to a
-    # solution 0.60 eV above the one a fresh guess reached
+    # off by default: measured with bench/warm_start.py (benzene bilayer + 1-3 Li, LDA/STO-3G)
+    # the guess from the previous step's orbitals plus the guests' atomic orbitals (right
+    # electron count and spin) saves no SCF iterations (median warm/cold 1.0 neutral, 1.1 Li⁺):
+    # the iterations go into the host's response to the new guest, which no guess of the old
+    # atoms contains. When DIIS stalls, the warm SCF is checked against a fresh one (it once
+    # reached a state 0.60 eV higher), so it can cost more than it saves
     warm_start: bool = Field(
-        False, description="start the SCF from the previous step's density (see the caution)"
+        False,
+        description="start the SCF from the previous step's orbitals plus the new guests' atomic "
+        "orbitals (measured: no fewer SCF iterations; see bench/warm_start.py)",
     )
     density_fit: bool = Field(True, description="density-fit the Coulomb term (faster gradients)")
     grid_level: int | None = Field(

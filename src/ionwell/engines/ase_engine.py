@@ -85,7 +85,8 @@ from ionwell.engines.results import (
     write_output,
 )
 from ionwell.errors import ConfigError, EngineOutputError, GridError
-from ionwell.science.grid import Grid, orient, save_npz
+from ionwell.io.npz import save_npz
+from ionwell.science.grid import Grid, orient
 
 __all__ = ["AseEngine", "grid_from_calculator", "load_calculator", "load_calculator_class"]
 

@@ -77,6 +77,11 @@ class StepResult(BaseModel):
     code_version: str
     wall_time: float = Field(description="seconds")
     warm_started: bool = False
+    guess: str | None = Field(
+        None,
+        description="initial guess of the final SCF, e.g. 'previous step (orbitals)', "
+        "'atomic (minao)', 'cold: atoms differ from the previous step' (None: not recorded)",
+    )
     potential_file: str | None = Field(None, description="grid file name beside result.json")
     potential_model: str = Field(
         "exact",

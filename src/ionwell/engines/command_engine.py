@@ -2,7 +2,8 @@
 
 :meth:`CommandEngine.prepare` writes the program's input (an ASE writer or a template) and any
 extra input files, carries restart files over, and records what it did in ``command.json``;
-:meth:`CommandEngine.argv` is the program's argv (the launcher adds its prefix);
+:meth:`CommandEngine.launch` runs the program's ``argv`` (and any ``then`` commands) through
+the launcher, which adds its prefix;
 :meth:`CommandEngine.collect` reads energy, forces, potential map, charges, orbital levels and
 the relaxed structure back, converting units at the edge (``ase.units``).
 

@@ -43,8 +43,10 @@ def pre_relax(
     default: the parity of the electron count) of the whole system. Returns the relaxed copy
     (cell and periodicity kept) and its record; writes the files named in the module
     docstring into ``folder``."""
-    from ionwell.engines.relax import relax_atoms
-    from ionwell.engines.tblite_engine import TbliteCalculator, _Xtb, tblite_version
+    from ase.io import read
+
+    from ionwell.engines.relax import TRAJECTORY, relax_atoms
+    from ionwell.engines.tblite_engine import tblite_version, xtb_calculator
 
     if relax.pre is None:
         raise ValueError("pre_relax needs relax.pre")
@@ -56,14 +58,13 @@ def pre_relax(
     model = TbliteEngineConfig(method=pre.method, electronic_temperature=pre.electronic_temperature)
     plain = Atoms(atoms.get_chemical_symbols(), positions=atoms.positions)
     t0 = time.perf_counter()
-    xtb = _Xtb(plain, model, int(charge), int(uhf), dipoles=False)
-    calc = TbliteCalculator(xtb)
-    start = plain.copy()
-    start.calc = calc
-    energy_start = float(start.get_potential_energy())
+    calc = xtb_calculator(plain, model, int(charge), int(uhf), dipoles=False)
     cfg = relax.model_copy(update={"fmax": pre.fmax, "steps": pre.steps})
     converged, steps, final, _ = relax_atoms(atoms, calc, movable, cfg, folder)
-    energy_end = float(xtb.energy())
+    # the trajectory's first frame is the starting geometry, with its energy
+    energy_start = float(read(folder / TRAJECTORY, index=0).get_potential_energy())
+    # the calculator's last evaluation is at the final geometry (relax_atoms)
+    energy_end = float(calc.get_potential_energy(final))
     moved = float(np.linalg.norm(final.positions - atoms.positions, axis=1).max(initial=0.0))
     record = PreRelaxRecord(
         method=pre.method,

@@ -161,13 +161,13 @@ def _check_tblite(cfg: TbliteEngineConfig, host: Atoms, guest: str, where: str) 
             f"campaign has {', '.join(heavy)}"
         )
     try:
-        from ionwell.engines.tblite_engine import _Xtb
+        from ionwell.engines.tblite_engine import xtb_calculator
     except ImportError:
         return  # not installed: the step says so when it runs
     nelec = int(host.get_atomic_numbers().sum()) - cfg.charge
     try:
         with _quiet():
-            _Xtb(host, cfg, cfg.charge, nelec % 2, dipoles=False)
+            xtb_calculator(host, cfg, cfg.charge, nelec % 2, dipoles=False)
     except ImportError:
         return
     except ConfigError as err:

@@ -9,7 +9,7 @@ Files in the engine folder of a step:
 ``relax.log``      ASE optimizer log
 ``pyscf.chk``      PySCF checkpoint of the final SCF (molecule, orbitals, occupations); the
                    next step's warm start reads it
-``potential.npz``  potential map, volts, float32 (:func:`ionwell.science.grid.save_npz`)
+``potential.npz``  potential map, volts, float32 (:func:`ionwell.io.npz.save_npz`)
 ``output.json``    every :class:`~ionwell.engines.base.StepResult` field, written last
 ``timings.json``   wall times of the stages and the SCF solvers used (diagnostics only)
 =================  =====================================================================
@@ -24,6 +24,10 @@ Science in brief:
   a DIIS run that stalls hands over to PySCF's second-order (Newton) solver. Hosts whose
   frontier levels are (nearly) degenerate once guests donate electrons converge far better with
   Fermi smearing (``engine.smearing``);
+* warm start (``engine.warm_start``): the first SCF of a step starts from the previous step's
+  occupied orbitals plus the new guests' atomic orbitals, orthonormalised together, with the
+  new electron count and spin (:func:`warm_start_guess`); the guess used is recorded in
+  ``StepResult.guess`` and the ledger, "cold: <why>" when the previous step cannot be used;
 * relaxation uses an ASE optimizer on analytic PySCF gradients; each geometry's SCF starts from
   the previous geometry's orbitals and follows the same electronic state;
 * the potential map is the potential felt by a positive test charge, nuclear minus electronic,
@@ -66,8 +70,9 @@ from ionwell.engines.results import (
 )
 from ionwell.engines.results import atomic_write as _atomic_write
 from ionwell.errors import ConfigError
+from ionwell.io.npz import save_npz
 from ionwell.science.charges import compute_charge_sets, occupied_orbitals
-from ionwell.science.grid import Grid, save_npz
+from ionwell.science.grid import Grid
 
 __all__ = [
     "CONTEXT",
@@ -83,6 +88,7 @@ __all__ = [
     "nuclear_potential",
     "potential_map",
     "warm_start_density",
+    "warm_start_guess",
 ]
 
 log = logging.getLogger("ionwell.engines.pyscf")
@@ -176,6 +182,8 @@ class _KohnSham:
         self.scf_seconds = 0.0
         self.grad_seconds = 0.0
         self.solvers: list[str] = []
+        #: the initial guess of the current SCF as recorded (the engine sets a warm start's)
+        self.guess = COLD_GUESS
         # keep occupations by maximum overlap (open shells without smearing; every SCF after a
         # Newton fallback): DIIS otherwise swaps electrons between near-degenerate levels
         self.follow = self.open_shell and cfg.smearing == 0
@@ -285,6 +293,7 @@ class _KohnSham:
         """
         t0 = time.perf_counter()
         cfg = self.cfg
+        warm = self.mf is None and self.dm is not None
         mol = self.mol if positions_ang is None else _moved(self.mol, positions_ang)
         self.mol = mol
         mf = self._new_mf(mol)
@@ -325,6 +334,19 @@ class _KohnSham:
             self.follow = True
         elif stalled or not mf.converged:
             log.warning("SCF with smearing did not converge in %d cycles", iterations)
+        suspect = warm and cfg.smearing == 0 and _aufbau_violation(mf) > AUFBAU_TOL
+        if suspect:
+            log.info(
+                "warm-started SCF: an occupied level lies %.3f eV above an empty one",
+                _aufbau_violation(mf) * Hartree,
+            )
+        self._store(mf, iterations, solver, t0)
+        if warm and (suspect or solver.endswith("newton")):
+            return self._against_cold(positions_ang)
+        return self.mf
+
+    def _store(self, mf, iterations: int, solver: str, t0: float) -> None:
+        """Keep ``mf`` as the current solution and add its counts to the running totals."""
         self.mf = mf
         self.dm = mf.make_rdm1()
         self.iterations = iterations
@@ -342,7 +364,32 @@ class _KohnSham:
             dt,
             mf.e_tot * Hartree,
         )
-        return mf
+
+    def _against_cold(self, positions_ang: np.ndarray | None):
+        """Solve again from the fresh guess after a warm-started SCF that needed the Newton
+        solver or left an empty level below an occupied one, and keep the lower of the two
+        states (iterations: both SCFs).
+
+        Measured (bench/warm_start.py, benzene bilayer + neutral Li, LDA/STO-3G): with
+        near-degenerate levels several solutions exist, and from the warm guess the SCF reached
+        one 0.604 eV (2 Li, Newton) and 0.752 eV (3 Li, DIIS with maximum overlap) above the
+        fresh guess's. For Li⁺ (closed shells, DIIS) warm and cold agreed within 2e-7 eV.
+        """
+        warm_mf, warm_its, warm_solver = self.mf, self.iterations, self.solver
+        log.info("checking the warm-started SCF: solving again from the fresh guess")
+        self.mf, self.dm = None, None
+        self.follow = self.open_shell and self.cfg.smearing == 0
+        cold_mf = self.scf(positions_ang)
+        diff = (warm_mf.e_tot - cold_mf.e_tot) * Hartree
+        self.iterations += warm_its
+        if warm_mf.converged and (diff <= 1e-6 or not cold_mf.converged):
+            self.mf, self.dm, self.solver = warm_mf, warm_mf.make_rdm1(), warm_solver
+            self.follow = True  # as after any Newton run: later geometries follow this state
+            self.guess += f", checked against the fresh guess ({diff:+.2e} eV)"
+        else:
+            self.guess = f"{COLD_GUESS}, the warm start's state was {diff:.3f} eV higher"
+            log.warning("the warm start reached a state %.3f eV above the fresh guess's", diff)
+        return self.mf
 
     def gradient(self) -> np.ndarray:
         """Nuclear gradient of the last SCF, hartree/bohr, shape (natm, 3)."""
@@ -374,6 +421,29 @@ class PyscfCalculator(Calculator):
             "energy": float(mf.e_tot) * Hartree,
             "forces": -grad * (Hartree / Bohr),
         }
+
+
+#: An occupied level this far (hartree) above an empty one of the same spin after a warm start
+#: sends the step to :meth:`_KohnSham._against_cold` (the fresh guess can reach the same
+#: occupation at the same energy, as on benzene + Li, or a lower state).
+AUFBAU_TOL = 1e-4
+#: The guess recorded for PySCF's own initial density.
+COLD_GUESS = "atomic (minao)"
+
+
+def _aufbau_violation(mf) -> float:
+    """Largest (highest occupied − lowest empty) orbital energy per spin channel, hartree;
+    positive when an empty level lies below an occupied one (not the aufbau occupation)."""
+    e = np.asarray(mf.mo_energy, dtype=float)
+    o = np.asarray(mf.mo_occ, dtype=float)
+    if e.ndim == 1:
+        e, o = e[None], o[None]
+    worst = -math.inf
+    for ec, oc in zip(e, o, strict=True):
+        full, empty = oc > 1e-8, oc <= 1e-8
+        if full.any() and empty.any():
+            worst = max(worst, float(ec[full].max() - ec[empty].min()))
+    return worst
 
 
 def _keep_occupation(mf, mo_ref: np.ndarray, occ_ref: np.ndarray) -> None:
@@ -415,6 +485,18 @@ def _orthonormal(mo: np.ndarray, s: np.ndarray) -> np.ndarray:
 # ---------------------------------------------------------------------------------------------
 # warm start
 
+#: Ways to build the first density of a step from the previous step's checkpoint (the engine
+#: uses :data:`WARM_CONSTRUCTION`; the others are kept for ``bench/warm_start.py``):
+#: ``orbitals`` the previous occupied orbitals plus the new atoms' occupied atomic orbitals,
+#: orthonormalised together in the new overlap metric (an idempotent density with the new
+#: electron count and spin, cross blocks included); ``blocks`` the previous density per spin
+#: plus the new atoms' atomic densities with the new electron count and spin, cross blocks zero;
+#: ``embed`` the previous density plus neutral atomic densities (the first version: wrong
+#: electron count for a charged guest, no spin on the new atoms).
+WARM_CONSTRUCTIONS = ("orbitals", "blocks", "embed")
+#: The construction the engine uses (fewest SCF iterations in bench/warm_start.py).
+WARM_CONSTRUCTION = "orbitals"
+
 
 def _spin_blocks(dm: np.ndarray, unrestricted: bool) -> np.ndarray:
     """Convert a density matrix to the shape an RKS (total) or UKS (alpha, beta) SCF takes."""
@@ -424,26 +506,84 @@ def _spin_blocks(dm: np.ndarray, unrestricted: bool) -> np.ndarray:
     return dm if dm.ndim == 2 else dm[0] + dm[1]
 
 
-def warm_start_density(mol, chk: Path, unrestricted: bool) -> np.ndarray | None:
-    """Initial density for ``mol`` from a previous step's PySCF checkpoint, or None.
+def _channels(mo: np.ndarray, occ: np.ndarray) -> list[tuple[np.ndarray, np.ndarray]]:
+    """(orbitals with electrons, their occupations 0-1) per spin channel, alpha then beta."""
+    if mo.ndim == 3:
+        return [(c[:, o > 0], o[o > 0]) for c, o in zip(mo, occ, strict=True)]
+    keep = occ > 0
+    return [(mo[:, keep], occ[keep] / 2)] * 2
 
-    Block embedding: when ``mol``'s atoms start with the previous molecule's atoms (same symbols
-    in the same order, same basis), the previous AO density fills the leading block and a
-    superposition of atomic densities (PySCF's ``atom`` guess) the rest; the cross blocks start
-    at zero. Otherwise None (the caller uses a normal guess). Why it was refused is logged.
+
+def _aufbau(energies: np.ndarray, n: float) -> np.ndarray:
+    """Occupations 0-1 of levels ``energies`` holding ``n`` electrons (one spin channel), lowest
+    first; a partly filled set of degenerate levels (within 1e-6 hartree) shares its electrons."""
+    occ = np.zeros(len(energies))
+    order = np.argsort(energies, kind="stable")
+    left = float(n)
+    i = 0
+    while left > 1e-12 and i < len(order):
+        group = [order[i]]
+        while i + len(group) < len(order) and (
+            energies[order[i + len(group)]] - energies[order[i]] < 1e-6
+        ):
+            group.append(order[i + len(group)])
+        take = min(left, float(len(group)))
+        occ[group] = take / len(group)
+        left -= take
+        i += len(group)
+    return occ
+
+
+def _new_atom_orbitals(mol, first: int) -> tuple[np.ndarray, np.ndarray]:
+    """Spherically averaged atomic HF orbitals of atoms ``first``… of ``mol`` (PySCF's
+    ``atom_hf``), embedded in ``mol``'s AO basis: (coefficients nao × k, energies hartree)."""
+    from pyscf.scf import atom_hf
+
+    with warnings.catch_warnings():  # PySCF's atomic SCF uses a deprecated helper of its own
+        warnings.simplefilter("ignore", DeprecationWarning)
+        atomic = atom_hf.get_atm_nrhf(mol)
+    aoslice = mol.aoslice_by_atom()
+    cols, energies = [], []
+    for ia in range(first, mol.natm):
+        symb = mol.atom_symbol(ia)
+        if symb not in atomic:
+            symb = mol.atom_pure_symbol(ia)
+        _, e, c, _ = atomic[symb]
+        p0, p1 = int(aoslice[ia, 2]), int(aoslice[ia, 3])
+        block = np.zeros((mol.nao_nr(), c.shape[1]))
+        block[p0:p1] = c
+        cols.append(block)
+        energies.append(np.asarray(e, dtype=float))
+    return np.hstack(cols), np.concatenate(energies)
+
+
+def warm_start_guess(
+    mol, chk: Path, unrestricted: bool, construction: str = WARM_CONSTRUCTION
+) -> tuple[np.ndarray | None, str]:
+    """Initial density for ``mol`` from a previous step's PySCF checkpoint.
+
+    Usable when ``mol``'s atoms start with the previous molecule's atoms (same symbols in the
+    same order, same basis): the previous step's solution describes the leading atoms, the new
+    atoms (the guests added since) get atomic orbitals, and the electrons they bring are the
+    difference of the electron counts per spin channel (so a cation guest brings its core only,
+    and the spin of the new system is right). ``construction`` is one of
+    :data:`WARM_CONSTRUCTIONS`. Returns (density matrix or None, the guess to record): e.g.
+    ``"previous step (orbitals)"``, or ``"cold: atoms differ from the previous step"``.
     """
+    if construction not in WARM_CONSTRUCTIONS:
+        raise ValueError(f"unknown warm-start construction {construction!r}")
     _, _, _, scf, *_ = _pyscf()
     try:
         prev, data = scf.chkfile.load_scf(str(chk))
     except Exception as err:  # h5py/KeyError/OSError: an unusable checkpoint is not fatal
         log.warning("warm start: cannot read %s (%s); using a fresh guess", chk, err)
-        return None
+        return None, "cold: previous checkpoint unreadable"
     n_prev = prev.natm
     if n_prev > mol.natm or [prev.atom_symbol(i) for i in range(n_prev)] != [
         mol.atom_symbol(i) for i in range(n_prev)
     ]:
         log.info("warm start: %s holds a different molecule; using a fresh guess", chk)
-        return None
+        return None, "cold: atoms differ from the previous step"
     nao_prev = prev.nao_nr()
     ao_end = int(mol.aoslice_by_atom()[n_prev - 1, 3])
     same_basis = ao_end == nao_prev and all(
@@ -452,8 +592,54 @@ def warm_start_density(mol, chk: Path, unrestricted: bool) -> np.ndarray | None:
     )
     if not same_basis:
         log.info("warm start: %s used another basis; using a fresh guess", chk)
-        return None
-    mo, occ = np.asarray(data["mo_coeff"]), np.asarray(data["mo_occ"])
+        return None, "cold: basis differs from the previous step"
+    mo, occ = np.asarray(data["mo_coeff"]), np.asarray(data["mo_occ"], dtype=float)
+    label = f"previous step ({construction})"
+    if construction == "embed":
+        return _embed_neutral_atoms(mol, mo, occ, nao_prev, unrestricted), label
+
+    channels = _channels(mo, occ)
+    # electrons the new atoms bring, per spin channel; the previous channels may swap
+    # (a previous excess of alpha electrons becomes beta) when that keeps both counts ≥ 0
+    want = np.array(mol.nelec, dtype=float)
+    have = np.array([o.sum() for _, o in channels])
+    add = want - have
+    if add.min() < -1e-8:
+        channels, have = channels[::-1], have[::-1]
+        add = want - have
+    if add.min() < -1e-8:
+        log.info("warm start: the new atoms would remove electrons; using a fresh guess")
+        return None, "cold: electron count below the previous step's"
+    nao = mol.nao_nr()
+    if mol.natm > n_prev:
+        c_new, e_new = _new_atom_orbitals(mol, n_prev)
+    else:
+        c_new, e_new = np.zeros((nao, 0)), np.zeros(0)
+    s = mol.intor_symmetric("int1e_ovlp")
+    dms = []
+    for (c_prev, o_prev), n_add in zip(channels, add, strict=True):
+        o_new = _aufbau(e_new, n_add)
+        if o_new.sum() < n_add - 1e-8:
+            log.info("warm start: the new atoms' orbitals cannot hold the electrons they bring")
+            return None, "cold: too few orbitals on the new atoms"
+        c_old = np.zeros((nao, c_prev.shape[1]))
+        c_old[:nao_prev] = c_prev
+        keep = o_new > 0
+        c = np.hstack([c_old, c_new[:, keep]])
+        o = np.concatenate([o_prev, o_new[keep]])
+        if construction == "orbitals":
+            c = _orthonormal(c, s)
+        dms.append((c * o) @ c.T)
+    dm = np.array(dms)
+    return (dm if unrestricted else dm[0] + dm[1]), label
+
+
+def _embed_neutral_atoms(
+    mol, mo: np.ndarray, occ: np.ndarray, nao_prev: int, unrestricted: bool
+) -> np.ndarray:
+    """The first warm start (``embed``): previous density plus neutral atomic densities,
+    cross blocks zero, the atomic part split evenly between the spin channels."""
+    _, _, _, scf, *_ = _pyscf()
     if mo.ndim == 3:  # unrestricted: (alpha, beta)
         dm_prev = np.array([(c * o) @ c.T for c, o in zip(mo, occ, strict=True)])
     else:
@@ -464,9 +650,14 @@ def warm_start_density(mol, chk: Path, unrestricted: bool) -> np.ndarray | None:
     dm[:nao_prev, :] = 0.0
     dm[:, :nao_prev] = 0.0
     dm = _spin_blocks(dm, unrestricted)
-    dm_prev = _spin_blocks(dm_prev, unrestricted)
-    dm[..., :nao_prev, :nao_prev] = dm_prev
+    dm[..., :nao_prev, :nao_prev] = _spin_blocks(dm_prev, unrestricted)
     return dm
+
+
+def warm_start_density(mol, chk: Path, unrestricted: bool) -> np.ndarray | None:
+    """Initial density for ``mol`` from a previous step's checkpoint, or None
+    (:func:`warm_start_guess` with the engine's construction, without the label)."""
+    return warm_start_guess(mol, chk, unrestricted)[0]
 
 
 # ---------------------------------------------------------------------------------------------
@@ -771,16 +962,16 @@ class PyscfEngine(InProcessEngine):
             lib.num_threads(),
         )
 
-        warm = False
         if cfg.warm_start and context.previous is not None:
             chk = Path(context.previous) / CHECKPOINT
             if chk.is_file():
-                dm0 = warm_start_density(mol, chk, ks.open_shell)
+                dm0, label = warm_start_guess(mol, chk, ks.open_shell)
+                ks.guess = label
                 if dm0 is not None:
                     ks.dm = dm0
-                    warm = True
-                    log.info("warm start from %s", chk)
+                    log.info("warm start from %s: %s", chk, label)
             else:
+                ks.guess = f"cold: no {CHECKPOINT} in the previous step"
                 log.info("warm start: no %s; using a fresh guess", chk)
 
         movable = sorted({int(i) for i in context.movable if 0 <= int(i) < len(atoms)})
@@ -840,7 +1031,8 @@ class PyscfEngine(InProcessEngine):
             code="pyscf",
             code_version=str(pyscf.__version__),
             wall_time=time.perf_counter() - t_start,
-            warm_started=warm,
+            warm_started=ks.guess.startswith("previous step"),
+            guess=ks.guess,
             potential_file=POTENTIAL if grid is not None else None,
         )
         diag = {

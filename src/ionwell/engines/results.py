@@ -5,7 +5,7 @@
 ``context.json``   the :class:`~ionwell.engines.base.ComputeContext`
 ``output.npz``     positions (Å) and forces (eV/Å), float64, binary
 ``output.json``    every other :class:`~ionwell.engines.base.StepResult` field, written last
-``potential.npz``  potential map, volts, float32 (:func:`ionwell.science.grid.save_npz`)
+``potential.npz``  potential map, volts, float32 (:func:`ionwell.io.npz.save_npz`)
 =================  =====================================================================
 
 Writes are atomic (temporary name, fsync, rename); :func:`collect_outputs` raises
@@ -27,7 +27,8 @@ from pydantic import ValidationError
 
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.errors import EngineOutputError, GridError
-from ionwell.science.grid import Grid, load_npz
+from ionwell.io.npz import load_npz
+from ionwell.science.grid import Grid
 from ionwell.store.campaign import atomic_publish
 from ionwell.store.campaign import atomic_write_text as atomic_write
 

@@ -7,7 +7,7 @@ Files in the engine folder of a step (as the pyscf engine, see :mod:`ionwell.eng
 ``context.json``   the :class:`~ionwell.engines.base.ComputeContext` (charge, spin, movable)
 ``relax.traj``     ASE optimizer trajectory (only when a relaxation ran)
 ``relax.log``      ASE optimizer log
-``potential.npz``  potential map, volts, float32 (:func:`ionwell.science.grid.save_npz`)
+``potential.npz``  potential map, volts, float32 (:func:`ionwell.io.npz.save_npz`)
 ``output.json``    every :class:`~ionwell.engines.base.StepResult` field, written last
 ``timings.json``   wall times and counts of the stages (diagnostics only)
 =================  =====================================================================
@@ -81,7 +81,8 @@ from ionwell.engines.results import (
     write_output,
 )
 from ionwell.errors import ConfigError, EngineOutputError
-from ionwell.science.grid import Grid, save_npz
+from ionwell.io.npz import save_npz
+from ionwell.science.grid import Grid
 
 __all__ = [
     "COULOMB",
@@ -91,6 +92,7 @@ __all__ = [
     "multipole_potential",
     "potential_map",
     "smearing_widths",
+    "xtb_calculator",
 ]
 
 log = logging.getLogger("ionwell.engines.tblite")
@@ -106,6 +108,10 @@ _ERF_RANGE = 6.0
 _SERIES_BELOW = 1e-2
 #: Grid points per block of the potential evaluation (bounds memory).
 _BLOCK_POINTS = 262_144
+
+
+#: The guess recorded per step: tblite cannot restart from a step with other atoms.
+TBLITE_GUESS = "cold: tblite restarts only with the same atoms (SAD guess)"
 
 
 def _tblite():
@@ -286,6 +292,17 @@ class TbliteCalculator(Calculator):
             "forces": self.xtb.forces(),
             "charges": np.asarray(res.get("charges"), dtype=float),
         }
+
+
+def xtb_calculator(
+    atoms: Atoms, cfg: TbliteEngineConfig, charge: int, uhf: int, dipoles: bool = True
+) -> TbliteCalculator:
+    """A new ASE calculator on tblite's model ``cfg.method`` for the atoms of ``atoms`` (their
+    symbols; positions in Å), total ``charge`` (e) and ``uhf`` unpaired electrons (2S); its
+    model is ``.xtb``. ``dipoles`` asks tblite for the atomic dipoles of the potential map.
+    Raises ConfigError when tblite cannot set the model up for these atoms, ImportError when
+    tblite is not installed."""
+    return TbliteCalculator(_Xtb(atoms, cfg, int(charge), int(uhf), dipoles=dipoles))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -491,7 +508,8 @@ class TbliteEngine(InProcessEngine):
         relax_converged: bool | None = None
         relax_steps = 0
         with _omp_threads(cfg.threads):
-            xtb = _Xtb(atoms, cfg, charge, spin)
+            calc = xtb_calculator(atoms, cfg, charge, spin)
+            xtb = calc.xtb
             log.info(
                 "tblite %s %s: %d atoms, charge %+d, 2S=%d, %.0f K",
                 version,
@@ -502,7 +520,6 @@ class TbliteEngine(InProcessEngine):
                 cfg.electronic_temperature,
             )
             if rcfg.enabled and movable:
-                calc = TbliteCalculator(xtb)
                 relax_converged, relax_steps, final, forces = relax_atoms(
                     atoms, calc, movable, rcfg, workdir
                 )
@@ -567,7 +584,11 @@ class TbliteEngine(InProcessEngine):
             code="tblite",
             code_version=version,
             wall_time=time.perf_counter() - t_start,
+            # tblite's Python API restarts only from a Result of the same atoms (a Result takes
+            # no density or charges from outside), so every step starts cold; within a
+            # relaxation each geometry restarts from the previous one's Result
             warm_started=False,
+            guess=TBLITE_GUESS,
             potential_file=POTENTIAL if grid is not None else None,
             potential_model=potential_model_name(dipoles is not None),
         )

@@ -1,14 +1,17 @@
-"""Reading an engine's potential map file into a :class:`~ionwell.science.grid.Grid` (I/O at the edge).
+"""Engine potential maps: reading a map file into a :class:`~ionwell.science.grid.Grid`.
 
-:func:`read_potential` reads the file named by an engine's ``outputs.potential``
-(:class:`~ionwell.config.engines.PotentialSpec`) and returns a grid in **volts**, in the
-**potential convention** (the potential felt by a positive test charge: nuclei are maxima).
-:func:`write_potential_npy` writes the NumPy array + JSON sidecar form that it reads.
+:func:`read_map` (and :func:`read_potential`, its grid alone) reads the file named by an
+engine's ``outputs.potential`` (:class:`~ionwell.config.engines.PotentialSpec`), or the map given
+to ``ionwell place``, and returns a grid in **volts**, in the **potential convention** (the
+potential felt by a positive test charge: nuclei are maxima). This module owns the NumPy array
++ JSON sidecar format (:func:`write_potential_npy` writes it) and the XSF data grid; cube files
+are parsed by :mod:`ionwell.io.cube`. ionwell's own grid store (a step's ``potential.npz``) is
+another format, :mod:`ionwell.io.npz`.
 
 Formats (``spec.format``; ``auto`` chooses by suffix, case-insensitive):
 
 ``cube`` (``.cube``, ``.cub``)
-    Gaussian cube, read by the fast :func:`ionwell.science.grid.read_cube`. Lengths follow the cube
+    Gaussian cube, read by the fast :func:`ionwell.io.cube.read_cube`. Lengths follow the cube
     convention (bohr, or Å for a negative point count). The file carries its atoms, which
     ``sign: auto`` uses (the ``atoms`` argument only when the cube lists none).
 ``npy`` (``.npy``) / ``npz`` (``.npz``)
@@ -45,7 +48,7 @@ source: it is frozen with every default spelled out, so "set explicitly" cannot 
 
 - a **cube** holds atomic units by convention, but its numbers are read in ``spec.unit`` like
   any other file: give ``unit: hartree`` for the usual cube (``spec.unit``'s default, ``V``,
-  reads the numbers as volts, with a logged warning). :func:`ionwell.science.grid.read_cube` already
+  reads the numbers as volts, with a logged warning). :func:`ionwell.io.cube.read_cube` already
   multiplies by ``Hartree``, so only the ratio ``POTENTIAL_UNITS[unit] / Hartree`` is applied:
   1 for hartree (no second conversion), ``1 / Hartree`` for volts;
 - a **sidecar**'s ``unit``, when present, must equal ``spec.unit``; otherwise reading fails
@@ -81,7 +84,9 @@ from pydantic import BaseModel, ConfigDict, ValidationError
 
 from ionwell.config.engines import POTENTIAL_UNITS, PotentialSpec
 from ionwell.errors import EngineOutputError, GridError
-from ionwell.science.grid import Grid, check_array_file, orient, read_cube
+from ionwell.io.cube import read_cube
+from ionwell.io.npz import check_array_file
+from ionwell.science.grid import Grid, orient, periodic_like, with_periodicity
 
 __all__ = [
     "SUFFIXES",
@@ -169,8 +174,9 @@ def read_map(
     atoms the file lists (cube, XSF; Å, in the file's own frame) or None (npy/npz).
 
     Periodicity: a format that cannot say it (cube, npy without ``pbc``) is periodic along an
-    axis where ``atoms`` is periodic and the grid spans its cell vector (:func:`periodic_like`);
-    ``pbc`` states it outright (:func:`with_periodicity`). A map whose file lists the atoms
+    axis where ``atoms`` is periodic and the grid spans its cell vector
+    (:func:`ionwell.science.grid.periodic_like`); ``pbc`` states it outright
+    (:func:`ionwell.science.grid.with_periodicity`). A map whose file lists the atoms
     wrapped into the cell, or shifted by lattice vectors, is not moved by those vectors.
 
     Args:
@@ -329,43 +335,6 @@ def not_a_potential(path: str | Path, fmt: str | None = None) -> str | None:
 
 #: Largest deviation (Å) from one common shift for the file's atoms to count as ours, moved.
 FRAME_TOLERANCE = 2e-3
-
-#: Å: a grid spans a cell vector when ``n · axis`` (or ``(n − 1) · axis`` with a repeated end
-#: plane) equals it to within this distance.
-SPAN_TOLERANCE = 1e-4
-
-
-def periodic_like(grid: Grid, atoms: Atoms) -> Grid:
-    """The grid made periodic along each axis where ``atoms`` is periodic and the grid spans
-    its cell vector: ``n`` points of step ``cell / n`` (the usual layout of a periodic code's
-    cube: the end point is the start of the next cell), or ``n`` points whose last repeats the
-    first (``(n − 1)`` steps span the cell; the repeated plane is dropped). Other axes stay as
-    they are."""
-    cell = np.asarray(atoms.cell.array, dtype=float)
-    pbc = list(grid.pbc)
-    drop = [False, False, False]
-    for ax in range(3):
-        if pbc[ax] or not atoms.pbc[ax]:
-            continue
-        n = grid.shape[ax]
-        step = np.asarray(grid.axes[ax], dtype=float)
-        if np.allclose(n * step, cell[ax], rtol=0.0, atol=SPAN_TOLERANCE):
-            pbc[ax] = True
-        elif n > 2 and np.allclose((n - 1) * step, cell[ax], rtol=0.0, atol=SPAN_TOLERANCE):
-            pbc[ax], drop[ax] = True, True
-    if tuple(pbc) == tuple(grid.pbc):
-        return grid
-    values = grid.values[tuple(slice(None, -1) if d else slice(None) for d in drop)]
-    logger.info("map periodic along axes %s (it spans the structure's cell)", pbc)
-    return Grid(origin=grid.origin, axes=grid.axes, values=values, pbc=tuple(pbc))
-
-
-def with_periodicity(grid: Grid, pbc: Sequence[bool]) -> Grid:
-    """The grid with the stated periodicity (period ``n · axes[i]`` along a periodic axis)."""
-    flags = tuple(bool(x) for x in pbc)
-    if len(flags) != 3:
-        raise GridError(f"periodicity: expected three flags (x, y, z), got {list(pbc)}")
-    return Grid(origin=grid.origin, axes=grid.axes, values=grid.values, pbc=flags)  # type: ignore[arg-type]
 
 
 def _align(grid: Grid, file_atoms: Atoms, atoms: Atoms, fail: _Fail) -> Grid:

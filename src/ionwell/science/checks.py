@@ -752,8 +752,8 @@ def step_findings(
     ``atoms`` is the host (``0..n_host-1``, the atoms ``facts`` describe) followed by the
     guests. ``settings`` bound the checks (``guest_host_min``, ``guest_alert``, ``rim_alert`` None
     and ``connectivity`` False switch theirs off); ``envelope`` (Å, None: off) is passed
-    resolved, since its default comes from the placement settings. ``relax_converged`` None: no
-    relaxation. Distance checks are skipped when positions are not finite (that itself is an
+    resolved (:meth:`ChecksConfig.envelope_for`), since its default comes from the placement
+    settings. ``relax_converged`` None: no relaxation. Distance checks are skipped when positions are not finite (that itself is an
     error finding). ``guest`` is the guest element: two such guests closer than
     ``guest_packing`` × the nearest-neighbour distance of its solid (``guest_metal_distance``,
     else :func:`metal_neighbour_distance`) give ``guests-closer-than-metal`` (pairs already below

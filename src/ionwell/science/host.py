@@ -1,6 +1,7 @@
-"""The host: hydrogen-terminated layered carbon flakes, and structures read from files.
+"""The host: hydrogen-terminated layered carbon flakes, periodic graphite, checks, layers.
 
-Pure functions over ASE :class:`~ase.Atoms`; the only I/O is reading a structure file.
+Pure functions over ASE :class:`~ase.Atoms`. Structure files are read in
+:mod:`ionwell.io.structures` (which applies :func:`check_atoms` to what it reads).
 
 Flake geometry. A sheet is cut from a graphene lattice whose C–C bond is ``cc``. Hexagon (ring)
 centres form a triangular lattice with vectors ``a1 = sqrt(3)·cc·(1, 0)`` and
@@ -43,7 +44,7 @@ from ase import Atoms
 from pydantic import BaseModel, ConfigDict
 from scipy.spatial import cKDTree
 
-from ionwell.config.campaign import FlakeBuilder, GraphiteBuilder, HostConfig
+from ionwell.config.campaign import FlakeBuilder, GraphiteBuilder
 from ionwell.errors import StructureError
 
 __all__ = [
@@ -51,15 +52,14 @@ __all__ = [
     "Layers",
     "build_flake",
     "build_graphite",
+    "build_host",
     "build_sheet",
     "check_atoms",
     "detect_layers",
     "host_formula_units",
-    "load_host",
-    "read_structure",
 ]
 
-#: Two atoms of a structure read from a file closer than this (Å) make it unusable.
+#: Two atoms of a structure closer than this (Å) make it unusable (:func:`check_atoms`).
 MIN_ATOM_DISTANCE = 0.5
 
 _SQRT3 = math.sqrt(3.0)
@@ -206,8 +206,15 @@ def build_graphite(builder: GraphiteBuilder) -> Atoms:
     return atoms
 
 
+def build_host(builder: FlakeBuilder | GraphiteBuilder) -> Atoms:
+    """The host a builder describes: :func:`build_graphite` or :func:`build_flake`."""
+    if isinstance(builder, GraphiteBuilder):
+        return build_graphite(builder)
+    return build_flake(builder)
+
+
 # ---------------------------------------------------------------------------------------------
-# structure files
+# checks of a structure
 
 
 def _closest_pair(atoms: Atoms, cutoff: float) -> tuple[int, int, float] | None:
@@ -234,109 +241,6 @@ def _closest_pair(atoms: Atoms, cutoff: float) -> tuple[int, int, float] | None:
     k = int(np.argmin(d))
     a, b = sorted((int(i[k]), int(j[k])))
     return a, b, float(d[k])
-
-
-#: Fewest bytes of an atom line of an XYZ file ("C 0 0 0" and a line end).
-_MIN_XYZ_LINE = 8
-
-
-def _check_xyz_counts(path: Path) -> None:
-    """Refuse an XYZ frame declaring more atoms than the rest of the file can hold, before
-    ASE's reader skips that many lines one by one (a count of 10¹² would take hours)."""
-    try:
-        size = path.stat().st_size
-        with path.open("rb") as f:
-            frame = 0
-            while line := f.readline():
-                if not line.strip():
-                    continue
-                try:
-                    natoms = int(line)
-                except ValueError:
-                    return  # not a count line: ASE's reader names the problem
-                frame += 1
-                room = (size - f.tell()) // _MIN_XYZ_LINE + 1
-                if natoms > room:
-                    raise StructureError(
-                        f"{path}: frame {frame} declares {natoms} atoms, but the file is {size} "
-                        f"bytes, with room for at most {room} atom lines after that count; "
-                        "expected an atom count that matches the file (a wrong count, or a "
-                        "truncated file)"
-                    )
-                for _ in range(max(natoms, 0) + 1):  # the comment line and the atom lines
-                    f.readline()
-    except OSError as err:
-        raise StructureError(f"{path}: cannot read ({err.strerror or err})") from None
-
-
-def _parse_error(path: Path, format: str, err: Exception) -> StructureError:
-    kind = type(err).__name__
-    text = " ".join(str(err).split())
-    if isinstance(err, StopIteration | EOFError):
-        detail = "the file ended before a complete structure was read"
-    else:
-        detail = f"{text} [{kind}]" if text else kind
-    return StructureError(
-        f"{path}: cannot parse as {format!r}: {detail}; expected a valid {format!r} structure"
-    )
-
-
-def read_structure(path: str | Path, format: str | None = None) -> Atoms:
-    """Read a structure in any ASE-readable format (the last frame if the file holds several).
-
-    Raises :class:`StructureError` naming the file when it is missing or unreadable, its format
-    is unknown, it holds no atoms, positions are not finite, or two atoms are closer than
-    :data:`MIN_ATOM_DISTANCE`.
-    """
-    import ase.io
-    from ase.io.formats import UnknownFileTypeError, filetype, ioformats
-
-    path = Path(path)
-    what = f"a structure in {'ASE format ' + repr(format) if format else 'an ASE format'}"
-    if not path.exists():
-        raise StructureError(f"{path}: no such file (expected {what})")
-    if path.is_dir():
-        raise StructureError(f"{path}: is a directory (expected {what})")
-    if path.stat().st_size == 0:
-        raise StructureError(f"{path}: file is empty (expected {what})")
-    if format is not None and format not in ioformats:
-        raise StructureError(
-            f"{path}: {format!r} is not an ASE format name; expected e.g. 'extxyz', 'xyz', "
-            "'cif', 'vasp' (see `ase info --formats`)"
-        )
-    if format is None:
-        try:
-            format = filetype(str(path), read=True)
-        except UnknownFileTypeError:
-            raise StructureError(
-                f"{path}: cannot tell the structure format from the name or contents; give it "
-                "with 'format', e.g. format: extxyz"
-            ) from None
-        except OSError as err:
-            raise StructureError(f"{path}: cannot read ({err.strerror or err})") from None
-        if format not in ioformats:
-            raise StructureError(
-                f"{path}: cannot tell the structure format from the name ({format!r} is not an "
-                "ASE format); give it with 'format', e.g. format: extxyz"
-            )
-    if format in ("xyz", "extxyz"):
-        _check_xyz_counts(path)
-    try:
-        atoms = ase.io.read(path, index=-1, format=format)
-    except OSError as err:
-        if err.errno is None:  # ASE readers raise OSError subclasses for malformed content
-            raise _parse_error(path, format, err) from None
-        raise StructureError(f"{path}: cannot read ({err.strerror or err})") from None
-    except Exception as err:  # ASE readers raise many kinds of errors on malformed input
-        raise _parse_error(path, format, err) from None
-    if isinstance(atoms, list):  # defensive: some readers ignore index
-        if not atoms:
-            raise StructureError(f"{path}: holds no structure (expected {what})")
-        atoms = atoms[-1]
-    if len(atoms) == 0:
-        raise StructureError(f"{path}: holds a structure with no atoms (expected {what})")
-    check_atoms(atoms, path)
-    return atoms
 
 
 def check_atoms(atoms: Atoms, source: str | Path) -> None:
@@ -366,22 +270,6 @@ def check_atoms(atoms: Atoms, source: str | Path) -> None:
             f"{source}: atoms {a} ({sa}) and {b} ({sb}) are {d:.3f} Å apart; expected every "
             f"pair at least {MIN_ATOM_DISTANCE} Å apart (duplicated atom or wrong units?)"
         )
-
-
-def load_host(host: HostConfig, base_dir: str | Path) -> Atoms:
-    """The host structure: built from ``host.builder`` or read from ``host.file``.
-
-    A relative file path is resolved against ``base_dir`` (the folder of the config file).
-    """
-    if isinstance(host.builder, GraphiteBuilder):
-        return build_graphite(host.builder)
-    if host.builder is not None:
-        return build_flake(host.builder)
-    assert host.file is not None
-    path = Path(host.file).expanduser()
-    if not path.is_absolute():
-        path = Path(base_dir) / path
-    return read_structure(path, host.format)
 
 
 def host_formula_units(atoms: Atoms, formula_unit: Mapping[str, int] | None) -> float:

@@ -27,7 +27,7 @@ import math
 import numpy as np
 from scipy.spatial import cKDTree
 
-from ionwell.science.grid import Grid, fractional_index
+from ionwell.science.grid import Grid, fractional_index, index_half_extent
 
 __all__ = ["line_cost", "mask_by_blocks", "mask_by_lines", "union_mask"]
 
@@ -38,14 +38,9 @@ LINE_BUDGET = 3_000_000
 BLOCK = 8
 
 
-def _index_half_extent(grid: Grid, radius: float) -> np.ndarray:
-    """Half the extent of a sphere of ``radius`` along each index axis (in grid steps)."""
-    return radius * np.linalg.norm(np.linalg.inv(np.asarray(grid.axes, dtype=float)), axis=0)
-
-
 def line_cost(grid: Grid, n_centres: int, radius: float) -> int:
     """The number of (centre, line) pairs :func:`mask_by_lines` visits."""
-    half = _index_half_extent(grid, radius)
+    half = index_half_extent(grid, radius)
     lines = 1
     for ax in (0, 1):
         span = int(math.floor(2 * half[ax])) + 2
@@ -82,7 +77,7 @@ def mask_by_lines(
         return np.zeros(shape, dtype=bool)
     axes = np.asarray(grid.axes, dtype=float)
     frac = fractional_index(grid, centers)
-    half = _index_half_extent(grid, radius)
+    half = index_half_extent(grid, radius)
     starts, spans = [], []
     for ax in (0, 1):
         lo = np.ceil(frac[:, ax] - half[ax]).astype(np.int64)

@@ -43,8 +43,6 @@ from ionwell.store.paths import UNRECORDED_DIRS, UNRECORDED_NAMES, StepPaths
 log = logging.getLogger(__name__)
 
 GENESIS = "0" * 64
-#: files in a step folder that are not part of the step's record
-UNRECORDED = set(UNRECORDED_NAMES)
 #: the sidecar of :func:`check_chain`, in the campaign folder (not a step folder: never hashed)
 VERIFIED_NAME = "ledger.verified.json"
 
@@ -60,7 +58,7 @@ class Rejection(BaseModel):
     reason: str
 
 
-_LATE_FIELDS = ("job_id", "inputs", "pre_relax")
+_LATE_FIELDS = ("job_id", "inputs", "pre_relax", "guess")
 #: fields of a decision's wells added after the first release: they enter the hash only when set
 _LATE_SITE_FIELDS = ("boundary",)
 
@@ -125,6 +123,9 @@ class LedgerRecord(BaseModel):
     pre_relax: PreRelaxRecord | None = Field(
         None, description="the cheap relaxation before the engine's (relax.pre), when made"
     )
+    guess: str | None = Field(
+        None, description="the SCF's initial guess as the engine reported it (e.g. a warm start)"
+    )
     hash: str = ""
 
     def compute_hash(self) -> str:
@@ -153,7 +154,7 @@ def hash_step_files(step_dir: Path) -> dict[str, str]:
         rel = p.relative_to(step_dir)
         if rel.parts[0] in UNRECORDED_DIRS:
             continue
-        if p.is_file() and p.name not in UNRECORDED and not p.name.endswith(".tmp"):
+        if p.is_file() and p.name not in UNRECORDED_NAMES and not p.name.endswith(".tmp"):
             out[p.relative_to(step_dir).as_posix()] = sha256_file(p)
     return out
 

@@ -58,7 +58,8 @@ from ionwell.errors import (
     describe_exception,
     error_kind,
 )
-from ionwell.science import checks, grid, placement
+from ionwell.io.npz import load_npz, save_npz
+from ionwell.science import checks, placement
 from ionwell.science import step as decide_step
 from ionwell.science.host import host_formula_units
 from ionwell.store.campaign import (
@@ -581,7 +582,7 @@ def _collect(paths: CampaignPaths, step: int, round_: int) -> Collected:
         _link_or_copy(engine_map, sp.potential)
     else:
         tmp = sp.root / ".potential.npz.tmp.npz"
-        grid.save_npz(tmp, pot)
+        save_npz(tmp, pot)
         atomic_publish(tmp, sp.potential)
     data = result.model_copy(
         update={"potential_file": sp.potential.name, "positions": [], "symbols": [], "forces": None}
@@ -671,7 +672,7 @@ def _assess(paths: CampaignPaths, step: int, round_: int) -> Verdict:
     if errors and tip is not None:
         periodic = None
         if host.pbc.any() and campaign.remedies.reject_site:
-            periodic = grid.load_npz(StepPaths(paths.step(tip.step)).potential)
+            periodic = load_npz(StepPaths(paths.step(tip.step)).potential)
         retry = decide_step.after_checks(
             campaign,
             findings,
@@ -786,6 +787,7 @@ def _finish(
         job_id=comp.job_id,
         inputs=input_digests(paths) if step == 0 else None,
         pre_relax=comp.pre_relax,
+        guess=result.guess,
     )
     rec = append_record(paths.ledger, record, tip=tip)
     append_event(paths, step=step, event="recorded", record=rec.hash)
@@ -863,7 +865,7 @@ def _findings(campaign, paths, step, relaxed, host, result) -> list[checks.Findi
         facts,
         scf_converged=result.scf_converged,
         relax_converged=result.relax_converged,
-        envelope=ck.envelope if ck.envelope is not None else campaign.placement.within + 1.0,
+        envelope=ck.envelope_for(campaign.placement.within),
         moved=moved,
         guest=campaign.guest.element,
     )
@@ -877,7 +879,7 @@ def _decide(
     them one after the other here."""
     if campaign.placement.rule == "screened" and energy_of is None:
         energy_of = _screening_energies(campaign, relaxed, sp, step, guests)
-    pot = grid.load_npz(sp.potential)
+    pot = load_npz(sp.potential)
     return placement.decide(
         pot,
         relaxed,
@@ -927,7 +929,7 @@ def _screen_candidates(campaign, sp: StepPaths, relaxed, n_host, step) -> list[l
         asked.extend(list(map(float, s.position)) for s in sites)
         return [None] * len(sites)
 
-    pot = grid.load_npz(sp.potential)
+    pot = load_npz(sp.potential)
     placement.decide(
         pot, relaxed, campaign.guest.element, campaign.placement, step=step, seed=campaign.seed,
         envelope_indices=list(range(n_host)), energy_of=note,

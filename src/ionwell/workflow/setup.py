@@ -6,7 +6,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from ionwell.config.campaign import Campaign
-from ionwell.science.host import load_host
+from ionwell.io.structures import load_host
 from ionwell.store.campaign import CampaignPaths, atomic_write_extxyz, freeze_or_check
 from ionwell.workflow.plan import resolve_host_path
 

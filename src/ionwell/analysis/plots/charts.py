@@ -1,4 +1,12 @@
-"""The analysis figures (matplotlib, Agg): each function draws one PNG from prepared numbers.
+"""The charts (matplotlib, Agg): each function draws one PNG from prepared numbers.
+
+* the analysis figures of one campaign, written into its ``analysis/`` folder by
+  :func:`ionwell.analysis.tables.analyse`: :func:`hull_plot`, :func:`voltage_plot`,
+  :func:`occupancy_map`, :func:`stacking_plot`, :func:`rim_plot`, :func:`charges_plot`,
+  :func:`dos_plot`; each stamps the campaign's caution along its bottom edge;
+* the comparison figures of several campaigns, drawn in memory for the HTML report
+  (:mod:`ionwell.analysis.report`): :func:`formation_comparison`, :func:`voltage_comparison`,
+  each returning PNG bytes.
 
 Energies eV, lengths Å, charges e, voltages V. Titles say "model result" where a number could be
 mistaken for a measurement.
@@ -7,95 +15,38 @@ mistaken for a measurement.
 from __future__ import annotations
 
 import logging
-import textwrap
 from collections.abc import Sequence
 from pathlib import Path
+from typing import NamedTuple
 
 import numpy as np
 
+from ionwell.analysis.plots.common import (
+    COMPARISON_DPI,
+    DPI,
+    formula,
+    png_bytes,
+    pyplot,
+    save,
+)
 from ionwell.science import energetics
 from ionwell.science.diagnostics import StepDiagnostics
 
 __all__ = [
+    "ComparedCampaign",
     "charges_plot",
     "dos_plot",
+    "formation_comparison",
     "hull_plot",
     "occupancy_map",
     "rim_plot",
     "scheme_label",
     "stacking_plot",
-    "stamp_caution",
+    "voltage_comparison",
     "voltage_plot",
 ]
 
-log = logging.getLogger("ionwell.analysis.plots")
-
-DPI = 120
-
-#: Font size (pt) of the caution stamped along the bottom of a figure.
-CAUTION_FONTSIZE = 6.5
-
-
-def _pyplot():
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    return plt
-
-
-def stamp_caution(fig, caution: str | None, *, fontsize: float = CAUTION_FONTSIZE) -> None:
-    """Write ``caution`` in small wrapped text along the bottom edge of ``fig``.
-
-    The figure grows by the height the text needs and everything already placed (axes, figure
-    texts such as the suptitle) keeps its size and position in inches, so nothing is covered. A
-    PNG that travels without the report still carries its caution. Call it once the layout is
-    final (after ``tight_layout``). ``None`` or an empty string: nothing is written.
-    """
-    if not caution or not caution.strip():
-        return
-    width, height = (float(v) for v in fig.get_size_inches())
-    # mean glyph width of the default sans-serif font is about 0.55 em
-    chars = max(30, int(0.96 * width * 72.0 / (0.56 * fontsize)))
-    lines = textwrap.wrap(" ".join(caution.split()), chars)
-    pad = 4.0 / 72.0  # inches below and above the text
-    extra = len(lines) * 1.3 * fontsize / 72.0 + 2 * pad
-    total = height + extra
-
-    def lift(y: float) -> float:
-        return (y * height + extra) / total
-
-    for ax in fig.axes:
-        pos = ax.get_position()
-        ax.set_position([pos.x0, lift(pos.y0), pos.width, pos.height * height / total])
-    for text in fig.texts:
-        if text.get_transform() == fig.transFigure:
-            text.set_y(lift(text.get_position()[1]))
-    fig.set_size_inches(width, total)
-    fig.text(
-        0.5 * pad / width,
-        pad / total,
-        "\n".join(lines),
-        ha="left",
-        va="bottom",
-        fontsize=fontsize,
-        color="0.3",
-        gid="caution",
-    )
-
-
-def _save(fig, path: Path, caution: str | None = None) -> None:
-    fig.tight_layout()
-    stamp_caution(fig, caution)
-    fig.savefig(path)
-    _pyplot().close(fig)
-    log.debug("figure written to %s", path)
-
-
-def formula(unit: dict[str, int]) -> str:
-    """The formula unit as text, e.g. ``{"C": 6}`` → ``C6``."""
-    return "".join(f"{el}{k if k != 1 else ''}" for el, k in unit.items())
+log = logging.getLogger("ionwell.analysis.plots.charts")
 
 
 #: How charge schemes recorded by the engines are named in titles.
@@ -130,7 +81,7 @@ def hull_plot(
 ) -> None:
     """Formation energy (eV) against x (guests per formula unit ``unit``) with the lower convex
     hull ``h``; ``caution`` is stamped along the bottom of the figure."""
-    plt = _pyplot()
+    plt = pyplot()
     fig, ax = plt.subplots(figsize=(6, 4), dpi=DPI)
     on = [i for i in range(len(x)) if i in h.vertices]
     off = [i for i in range(len(x)) if i not in h.vertices]
@@ -145,7 +96,7 @@ def hull_plot(
     ax.axhline(0, color="0.8", lw=0.8)
     ax.legend(frameon=False)
     ax.set_title("Formation energy and convex hull (model result)")
-    _save(fig, path, caution)
+    save(fig, path, caution)
 
 
 def voltage_plot(
@@ -153,7 +104,7 @@ def voltage_plot(
 ) -> None:
     """Voltage steps (V) between hull vertices against gravimetric capacity (mAh/g);
     ``caution`` is stamped along the bottom of the figure."""
-    plt = _pyplot()
+    plt = pyplot()
     fig, ax = plt.subplots(figsize=(6, 4), dpi=DPI)
     for s in steps:
         cap = [energetics.capacity_mah_per_g(s.x_from, unit, z),
@@ -171,7 +122,7 @@ def voltage_plot(
     ax.set_ylabel(f"voltage vs {guest}/{guest}$^{{{z}+}}$ / V" if z > 1 else
                   f"voltage vs {guest}/{guest}$^+$ / V")  # fmt: skip
     ax.set_title("Voltage steps between hull vertices (model result)")
-    _save(fig, path, caution)
+    save(fig, path, caution)
 
 
 def occupancy_map(
@@ -179,7 +130,7 @@ def occupancy_map(
 ) -> None:
     """Guests per gallery (rows) at each step (columns); stage on the top axis; a row for guests
     outside every gallery when there are any."""
-    plt = _pyplot()
+    plt = pyplot()
     n_gal = max(len(d.galleries) for d in diags)
     outside = any(d.guests_outside for d in diags)
     rows = n_gal + (1 if outside else 0)
@@ -209,14 +160,14 @@ def occupancy_map(
     top.set_xlabel("stage")
     ax.set_title("Guests per gallery")
     fig.colorbar(im, ax=ax, label="guests", fraction=0.04)
-    _save(fig, path, caution)
+    save(fig, path, caution)
 
 
 def stacking_plot(
     path: Path, diags: Sequence[StepDiagnostics], *, caution: str | None = None
 ) -> None:
     """Per adjacent layer pair: interlayer spacing (Å) and registry (AA / AB / other) by step."""
-    plt = _pyplot()
+    plt = pyplot()
     n_gal = max(len(d.galleries) for d in diags)
     fig, (ax1, ax2) = plt.subplots(2, 1, figsize=(6.5, 5.5), dpi=DPI, sharex=True)
     marks = {"AA": "s", "AB": "o", "other": "x", None: "."}
@@ -241,7 +192,7 @@ def stacking_plot(
     ax2.set_xlabel("step")
     ax2.set_ylabel("registry")
     ax2.grid(axis="y", color="0.9")
-    _save(fig, path, caution)
+    save(fig, path, caution)
 
 
 def rim_plot(
@@ -252,7 +203,7 @@ def rim_plot(
     caution: str | None = None,
 ) -> None:
     """Rim / interior guests per step (bars) and the nearest guest–guest distance (Å)."""
-    plt = _pyplot()
+    plt = pyplot()
     rows = [d for d in diags if d.rim_guests is not None]
     steps = [d.step for d in rows]
     rim = [d.rim_guests for d in rows]
@@ -272,7 +223,7 @@ def rim_plot(
     h2, l2 = ax2.get_legend_handles_labels()
     ax.legend(h1 + h2, l1 + l2, frameon=False, fontsize=8, loc="upper left")
     ax.set_title("Where the guests sit: rim or interior of the particle")
-    _save(fig, path, caution)
+    save(fig, path, caution)
 
 
 def _nan(v: float | None) -> float:
@@ -294,7 +245,7 @@ def charges_plot(
     atoms. Each line has its own marker, line style and a small horizontal offset, so none hides
     another where they coincide.
     """
-    plt = _pyplot()
+    plt = pyplot()
     rows = [d for d in diags if d.host_electrons_gained is not None]
     steps = np.array([d.step for d in rows], dtype=float)
     gaps = np.diff(np.unique(steps))
@@ -327,7 +278,7 @@ def charges_plot(
     bottom.legend(frameon=False, fontsize=8)
     if len(steps):
         bottom.set_xticks(np.unique(steps))
-    _save(fig, path, caution)
+    save(fig, path, caution)
 
 
 #: Axis label of energies relative to the frontier level, by the level's name.
@@ -354,7 +305,7 @@ def dos_plot(
     ``curves`` holds ``(step, dos, lumo)`` with ``lumo`` the step's LUMO relative to its
     frontier level (eV; None when unknown), marked with a short tick on that curve.
     """
-    plt = _pyplot()
+    plt = pyplot()
     fig, ax = plt.subplots(figsize=(6.5, max(4.0, 1.5 + 0.35 * len(curves))), dpi=DPI)
     cmap = plt.get_cmap("viridis")
     top = max(float(c.max()) for _, c, _ in curves) if curves else 1.0
@@ -381,4 +332,78 @@ def dos_plot(
     marks = f"dashed: {level_name}" + ("; ticks: LUMO" if any_lumo else "")
     ax.set_title(f"Density of states, Gaussian σ = {width:g} eV ({marks})", fontsize=10)
     ax.legend(frameon=False, fontsize=8, loc="upper left")
-    _save(fig, path, caution)
+    save(fig, path, caution)
+
+
+# ---------------------------------------------------------------------------------------------
+# comparison figures of several campaigns (in memory, for the report)
+
+
+class ComparedCampaign(NamedTuple):
+    """One campaign's numbers in the comparison figures."""
+
+    name: str
+    #: the campaign's place among all compared campaigns; picks its colour, marker and line style
+    slot: int
+    #: ``(x, formation energy in eV, on the hull)`` per step
+    formation: Sequence[tuple[float, float, bool]]
+    #: ``(x_from, x_to, voltage in V)`` per voltage step between hull vertices
+    voltage: Sequence[tuple[float, float, float]] = ()
+
+
+def _comparison_style(slot: int) -> tuple[str, str, str]:
+    """Colour, marker and line style of the campaign in ``slot``: all three change from one
+    campaign to the next, so overlapping curves stay apart."""
+    return f"C{slot % 10}", "osD^v<>ph*"[slot % 10], ("-", "--", "-.", ":")[slot % 4]
+
+
+def formation_comparison(campaigns: Sequence[ComparedCampaign]) -> bytes:
+    """PNG: formation energy (eV) against x of every campaign, its lower hull drawn through the
+    points on the hull (filled) and the others open; one legend entry per campaign."""
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(7, 4.5), dpi=COMPARISON_DPI)
+    ax = fig.add_subplot()
+    for c in campaigns:
+        colour, marker, ls = _comparison_style(c.slot)
+        pts = c.formation
+        on = sorted((x, e) for x, e, h in pts if h)
+        ax.plot([p[0] for p in on], [p[1] for p in on], ls, color=colour, lw=1.5, alpha=0.8)
+        ax.scatter([x for x, _, h in pts if h], [e for _, e, h in pts if h], s=36, color=colour,
+                   marker=marker, zorder=3, label=c.name)  # fmt: skip
+        ax.scatter([x for x, _, h in pts if not h], [e for _, e, h in pts if not h], s=36,
+                   marker=marker, facecolors="none", edgecolors=colour, zorder=3)  # fmt: skip
+    ax.axhline(0.0, color="0.8", lw=0.8)
+    ax.set_xlabel("x (guests per host formula unit)")
+    ax.set_ylabel("formation energy / eV")
+    ax.set_title("Formation energy and lower hull per campaign (model results)")
+    ax.text(0.99, 0.01, "filled: on the hull, open: above it", transform=ax.transAxes,
+            ha="right", va="bottom", fontsize="x-small", color="0.4")  # fmt: skip
+    ax.legend(frameon=False, fontsize="small")
+    fig.tight_layout()
+    return png_bytes(fig)
+
+
+def voltage_comparison(campaigns: Sequence[ComparedCampaign]) -> bytes:
+    """PNG: the voltage step profile (V) against x of every campaign, steps joined by dotted
+    risers; campaigns without voltage steps draw nothing. Raises ValueError when none has any."""
+    from matplotlib.figure import Figure
+
+    if not any(c.voltage for c in campaigns):
+        raise ValueError("voltage comparison: no campaign has a voltage step")
+    fig = Figure(figsize=(7, 4.5), dpi=COMPARISON_DPI)
+    ax = fig.add_subplot()
+    for c in campaigns:
+        colour, _, ls = _comparison_style(c.slot)
+        segs = c.voltage
+        for k, (a, b, v) in enumerate(segs):
+            ax.plot([a, b], [v, v], ls, color=colour, lw=2, alpha=0.85,
+                    label=c.name if k == 0 else None)  # fmt: skip
+        for (_, b, v0), (_, _, v1) in zip(segs[:-1], segs[1:], strict=True):
+            ax.plot([b, b], [v0, v1], color=colour, lw=0.8, ls=":")
+    ax.set_xlabel("x (guests per host formula unit)")
+    ax.set_ylabel("voltage / V")
+    ax.set_title("Voltage profile per campaign (model results)")
+    ax.legend(frameon=False, fontsize="small")
+    fig.tight_layout()
+    return png_bytes(fig)

@@ -29,7 +29,7 @@ from ase import Atoms
 from ase.data import atomic_numbers, covalent_radii
 from ase.data.colors import jmol_colors
 
-from ionwell.analysis.plots import DPI, _pyplot, stamp_caution
+from ionwell.analysis.plots.common import DPI, pyplot, stamp_caution
 
 __all__ = [
     "MAX_FRAMES",
@@ -39,7 +39,7 @@ __all__ = [
     "structure_view",
 ]
 
-log = logging.getLogger("ionwell.analysis.views")
+log = logging.getLogger("ionwell.analysis.plots.structures")
 
 #: At most this many steps in a filling sequence.
 MAX_FRAMES = 8
@@ -354,7 +354,7 @@ def _structure_figure(
     new: Sequence[int] = (),
 ):
     """The matplotlib Figure of :func:`structure_view` (not saved; the caller closes it)."""
-    plt = _pyplot()
+    plt = pyplot()
     scene = _Scene(atoms, n_host, _basis(normal), groups, new, title)
     ext = scene.extent()
     xlim = ext[0]
@@ -417,7 +417,7 @@ def structure_view(
     try:
         fig.savefig(path)
     finally:
-        _pyplot().close(fig)
+        pyplot().close(fig)
     log.debug("structure view written to %s", path)
 
 
@@ -445,7 +445,7 @@ def _filling_figure(
         log.warning("filling sequence: %d frames given, %d drawn", len(frames), len(keep))
         frames = [f for i, f in enumerate(frames) if i in keep]
         groups = [g for i, g in enumerate(groups) if i in keep]
-    plt = _pyplot()
+    plt = pyplot()
     basis = _basis(normal)
     scenes = []
     before = None
@@ -525,5 +525,5 @@ def filling_sequence(
     try:
         fig.savefig(path)
     finally:
-        _pyplot().close(fig)
+        pyplot().close(fig)
     log.debug("filling sequence written to %s", path)

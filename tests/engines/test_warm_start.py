@@ -1,0 +1,116 @@
+"""Warm start of the embedded PySCF engine: the guess built from the previous step, the state it
+reaches (the same as from a fresh guess), and the guess recorded per step (result and ledger)."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+import yaml
+from ase import Atoms
+from ase.build import molecule
+from ase.units import Hartree
+
+from ionwell.config.campaign import PyscfEngineConfig
+from ionwell.engines.pyscf_engine import (
+    COLD_GUESS,
+    WARM_CONSTRUCTIONS,
+    _KohnSham,
+    build_mol,
+    warm_start_guess,
+)
+
+pyscf = pytest.importorskip("pyscf")
+
+# tight SCF so that two solutions of one state agree far below 1e-6 eV
+TIGHT = PyscfEngineConfig(xc="lda,vwn", basis="sto-3g", conv_tol=1e-10, warm_start=True)
+
+
+def _solve(atoms: Atoms, charge: int, guess_from=None, construction="orbitals"):
+    """SCF of ``atoms`` through the engine's driver, from the fresh guess or from the checkpoint
+    ``guess_from``; returns (the _KohnSham after the SCF, the guess label)."""
+    mol = build_mol(atoms, TIGHT.basis, charge)
+    ks = _KohnSham(mol, TIGHT)
+    label = COLD_GUESS
+    if guess_from is not None:
+        ks.dm, label = warm_start_guess(mol, guess_from, ks.open_shell, construction)
+    ks.scf()
+    assert ks.mf.converged
+    return ks, label
+
+
+def _checkpoint(ks, path):
+    from pyscf.scf import chkfile
+
+    mf = ks.mf
+    chkfile.dump_scf(mf.mol, str(path), mf.e_tot, mf.mo_energy, mf.mo_coeff, mf.mo_occ)
+    return path
+
+
+def _counts(mol, dm):
+    """(electrons, 2S) of a guess density: tr(D·S) and tr((Dα − Dβ)·S)."""
+    s = mol.intor_symmetric("int1e_ovlp")
+    dm = np.asarray(dm)
+    if dm.ndim == 2:
+        return float(np.trace(dm @ s)), 0.0
+    return float(np.trace((dm[0] + dm[1]) @ s)), float(np.trace((dm[0] - dm[1]) @ s))
+
+
+@pytest.mark.parametrize("construction", [c for c in WARM_CONSTRUCTIONS if c != "embed"])
+def test_guess_has_the_new_electron_count_and_spin(tmp_path, construction):
+    """H2 → H2 + Li (neutral: 5 electrons, 2S = 1) → H2 + Li + Li⁺ (charge +1: 7 electrons,
+    2S = 1) → H2 + 2 Li (neutral: 8 electrons, 2S = 0). The guess must carry the new system's
+    electron count and spin: a cation guest brings 2 electrons, not a neutral atom's 3."""
+    h2 = Atoms("H2", [(0, 0, 0), (0, 0, 0.74)])
+    li1 = h2 + Atoms("Li", [(0, 2.5, 0.37)])
+    li2 = li1 + Atoms("Li", [(0, -2.5, 0.37)])
+    chk0 = _checkpoint(_solve(h2, 0)[0], tmp_path / "h2.chk")
+    chk1 = _checkpoint(_solve(li1, 0)[0], tmp_path / "li1.chk")
+    for atoms, charge, chk, expect in [(li1, 0, chk0, (5, 1)), (li2, 1, chk1, (7, 1)),
+                                       (li2, 0, chk1, (8, 0))]:  # fmt: skip
+        mol = build_mol(atoms, TIGHT.basis, charge)
+        dm, label = warm_start_guess(mol, chk, mol.spin != 0, construction)
+        assert label == f"previous step ({construction})"
+        assert _counts(mol, dm) == pytest.approx(expect, abs=1e-8)
+
+
+def test_guess_refuses_other_atoms(tmp_path):
+    chk = _checkpoint(_solve(molecule("H2O"), 0)[0], tmp_path / "h2o.chk")
+    mol = build_mol(molecule("NH3"), "sto-3g")
+    dm, label = warm_start_guess(mol, chk, False)
+    assert dm is None and label == "cold: atoms differ from the previous step"
+
+
+# two systems: benzene + neutral Li (UKS, the guest donates its electron to the ring) and
+# benzene + Li⁺ (RKS); the guest 1.9 Å above the ring centre
+@pytest.mark.parametrize(("charge", "spin"), [(0, 1), (1, 0)])
+def test_warm_and_cold_reach_the_same_energy(tmp_path, charge, spin):
+    benzene = molecule("C6H6")
+    chk = _checkpoint(_solve(benzene, 0)[0], tmp_path / "benzene.chk")
+    atoms = benzene + Atoms("Li", [(0.0, 0.0, 1.9)])
+    cold, _ = _solve(atoms, charge)
+    warm, label = _solve(atoms, charge, guess_from=chk)
+    assert label == "previous step (orbitals)"
+    assert warm.mol.spin == cold.mol.spin == spin
+    assert (warm.mf.e_tot - cold.mf.e_tot) * Hartree == pytest.approx(0.0, abs=1e-6)
+
+
+@pytest.mark.slow
+def test_ledger_records_the_guess_per_step(tmp_path):
+    """A two-step campaign (benzene, then benzene + Li⁺) with the warm start on: step 0 starts
+    from PySCF's atomic guess, step 1 from step 0's orbitals; both recorded in the ledger."""
+    from shared import TINY, run_campaign
+
+    from ionwell.store.campaign import CampaignPaths
+    from ionwell.store.ledger import read_ledger
+
+    data = json.loads(json.dumps(TINY))
+    data["engine"]["warm_start"] = True
+    data["relax"] = {"enabled": False}
+    data["stop"] = {"guests": 1, "max_steps": 2}
+    cfg = tmp_path / "tiny.yaml"
+    cfg.write_text(yaml.safe_dump(data))
+    run_campaign(cfg, tmp_path)
+    recs = read_ledger(CampaignPaths(tmp_path / "campaigns" / "tiny").ledger)
+    assert [r.guess for r in recs] == [COLD_GUESS, "previous step (orbitals)"]
