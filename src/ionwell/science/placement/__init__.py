@@ -43,25 +43,8 @@ Vocabulary:
   at least two such wells (``Site.degenerate``). They are reported, not reordered: ``deepest``
   still takes the first in the order above.
 
-Placement rules:
-
-* ``deepest`` — the first well in order.
-* ``thermal`` — a random well, with Boltzmann weight ``exp(-z·(V - V_min)/(k_B·T))`` for the
-  guest charge ``z`` (``k_B`` from ``ase.units``), among the recorded wells. The generator is
-  numpy's ``default_rng`` seeded with ``[seed, step]``, and a draw is one ``random()`` number
-  ``u`` mapped through the cumulative weights (the first well whose cumulative weight exceeds
-  ``u`` times the total), so the same campaign seed and step always make the same choice.
-  ``T = 0`` is the ``deepest`` rule exactly; as ``T → 0`` the weights of all but the deepest well
-  vanish.
-* ``screened`` — the ``screen.top`` deepest wells get an energy (eV) from the caller's ``energy_of``;
-  the lowest energy wins, ties going to the deeper well. Wells whose energy is missing (None or
-  not finite) are not chosen.
-* ``per_step`` > 1 — several guests in one step, at least ``separation`` Å apart
-  (minimum image): wells are taken greedily in the rule's order (deepest: potential; screened:
-  energy), skipping any closer than ``separation`` to one already taken; ``thermal`` draws one
-  well at a time without replacement among the wells that keep the separation, the weights
-  renormalised over them. Fewer guests than asked are placed when the wells run out, and the
-  reason says so.
+Placement rules (``deepest``, ``thermal``, ``screened``, and ``per_step`` > 1): see
+:mod:`ionwell.science.placement.rules`, where each is one function of the table ``RULES``.
 
 Rejected sites (the loop's ``reject_site`` remedy): when a step computed with the chosen sites
 fails a check, :func:`next_untried` strikes out every site tried so far and takes the next wells
