@@ -166,6 +166,7 @@ def test_emt_energy_forces_equal_emt_and_file_potential(tmp_path):
     np.testing.assert_allclose(np.array(result.forces), ref.get_forces(), atol=1e-12)
     assert result.code == f"ase:{HERE}.EMTWritingPotential"
     assert result.scf_converged is True
+    assert result.guess == "cold: the calculator's own initial guess"
     # the file (hartree/e) came back in volts, same grid
     expected = bump_grid(atoms)
     np.testing.assert_allclose(grid.values, expected.values, rtol=1e-6)

@@ -651,6 +651,7 @@ def test_warm_start_only_from_a_step_with_the_same_atoms(tmp_path):
     engine.prepare(water, first, ComputeContext(step=0))
     engine.launch(first, launcher)
     assert (first / "runner.chk").is_file()
+    assert engine.collect(first)[0].guess == "cold: the program's own initial guess"
 
     same = water.copy()
     same.positions[1] += [0.0, 0.02, 0.0]
@@ -660,6 +661,7 @@ def test_warm_start_only_from_a_step_with_the_same_atoms(tmp_path):
     engine.launch(second, launcher)
     result, _ = engine.collect(second)
     assert result.warm_started and result.notes == []
+    assert result.guess == "restart files of the previous step"
 
     more = water + Atoms("H", positions=[[0.0, 0.0, 2.5]])
     third = tmp_path / "s2"
@@ -670,6 +672,7 @@ def test_warm_start_only_from_a_step_with_the_same_atoms(tmp_path):
     result, _ = engine.collect(third)
     assert not result.warm_started
     assert any("cold start" in n and "had 3 atoms, this one 4" in n for n in result.notes)
+    assert result.guess == "cold: the previous step had 3 atoms, this one 4"
     assert "initial guess from runner.chk" not in (third / "job.log").read_text()
 
     # files in place but the program did not say it read them: not counted as a warm start
@@ -684,6 +687,7 @@ def test_warm_start_only_from_a_step_with_the_same_atoms(tmp_path):
     result, _ = engine.collect(fourth)
     assert not result.warm_started
     assert any("use of the restart files not proven" in n for n in result.notes)
+    assert result.guess == "cold: the program did not use the restart files in place"
 
 
 def test_frozen_campaign_loads_without_its_definition(tmp_path, monkeypatch):

@@ -355,6 +355,8 @@ class AseEngine(InProcessEngine):
             code=f"ase:{cfg.calculator}",
             code_version=_code_version(cfg.calculator),
             wall_time=time.perf_counter() - t_start,
+            # a calculator object is made fresh for each step: nothing carries over between steps
+            guess="cold: the calculator's own initial guess",
             potential_file=POTENTIAL if grid is not None else None,
             potential_model=model,
         )

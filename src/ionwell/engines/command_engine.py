@@ -23,7 +23,8 @@ of atoms: codes ignore restart files of another system and start cold, so then n
 copied, ``${restart}`` is ``restart.fresh`` and a note says why. ``warm_started`` in the result
 is true only when restart files were in place, (with ``restart.used``) the output proves the
 program read them and (with ``restart.not_used``) it does not say it started from its own guess
-instead. Outputs of the earlier attempt are removed first, so nothing stale is ever
+instead; ``guess`` (recorded in the ledger) says which restart files were used or why the start
+was cold. Outputs of the earlier attempt are removed first, so nothing stale is ever
 read.
 
 Version: with ``outputs.version`` the recorded ``code_version`` is what the program printed (the
@@ -256,6 +257,7 @@ class CommandEngine:
 
         notes: list[str] = []
         restart_from = None
+        cold = "cold: the program's own initial guess"
         if keep:
             restart_from = "earlier attempt"
             log.info(
@@ -274,6 +276,7 @@ class CommandEngine:
                     "files of another system)"
                 )
                 log.info("%s%s", where, notes[-1])
+                cold = f"cold: the previous step had {had}, this one {len(atoms)}"
             else:
                 copied = self._copy_previous(previous, workdir)
                 if copied:
@@ -308,6 +311,7 @@ class CommandEngine:
             (workdir / name).write_text(fill(text, values, f"engine.extra_inputs.{name}"))
         state = {
             "restart": restart_from,
+            "cold": cold,
             "values": {k: values[k] for k in ("charge", "spin")},
             "frame": {
                 "boxed": boxed,
@@ -621,6 +625,12 @@ class CommandEngine:
                 f"(a line matches {cfg.restart.not_used.regex!r}); not a warm start"
             )
 
+        if warm:
+            guess = f"restart files of the {state['restart']}"
+        elif state.get("restart") is not None:
+            guess = "cold: the program did not use the restart files in place"
+        else:
+            guess = state.get("cold") or "cold: the program's own initial guess"
         result = StepResult(
             energy=energy,
             forces=forces,
@@ -640,6 +650,7 @@ class CommandEngine:
             code_version=version,
             wall_time=float(state.get("seconds", 0.0)),
             warm_started=warm,
+            guess=guess,
             notes=notes,
             **levels,
         )
