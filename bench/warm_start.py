@@ -1,18 +1,33 @@
 """Warm start vs fresh guess: SCF iterations and SCF time of the embedded PySCF engine.
 
     python bench/warm_start.py [--layers 2] [--shells 1] [--steps 4] [--modes neutral,cation]
-                               [--xc lda,vwn] [--basis sto-3g] [--root DIR]
+                               [--xc lda,vwn] [--xc pbe] [--basis sto-3g] [--basis 6-31g]
+                               [--relax-steps 1,2] [--geometries 4] [--smearing 0]
+                               [--root DIR]
 
 One campaign of ``--steps`` neutral Li insertions into a flake (default: a benzene bilayer, 24
 atoms; the issue's coronene bilayer is ``--shells 2``, ~700 s per single point on two cores)
-gives the structures (fresh guesses, relaxation off). For each guest mode the structures are
-then solved again, SCF only, through the engine's SCF driver (DIIS, maximum overlap for open
-shells, the Newton fallback): step n with n guests and charge 0 (neutral) or +n (cation, every
-Li a Li⁺), from PySCF's fresh guess (cold) and, for n ≥ 1, from the cold solution of step n − 1
-with each construction of :data:`ionwell.engines.pyscf_engine.WARM_CONSTRUCTIONS`. Prints one
-JSON line per step and construction (iterations, SCF seconds, energy minus the cold energy in
-eV) and, per mode and construction, the median ratios warm/cold of iterations and SCF seconds.
-``--root`` keeps the campaign there and reuses it when run again. Run by hand; not a test.
+gives the structures (LDA/STO-3G, fresh guesses, relaxation off). For each functional, basis
+and guest mode the structures are then solved again, SCF only, through the engine's SCF driver
+(DIIS, maximum overlap for open shells, the Newton fallback): step n with n guests and charge 0
+(neutral) or +n (cation, every Li a Li⁺), from PySCF's fresh guess (cold) and, for n ≥ 1, from
+the cold solution of step n − 1 with each construction of
+:data:`ionwell.engines.pyscf_engine.WARM_CONSTRUCTIONS`.
+
+Two diagnostics say where the iterations go, per guess: ``distance`` = ‖D₀ − D‖ (Frobenius,
+AO basis) between the guess and the converged density, and ``first_cycle_eV`` = the energy
+after one diagonalisation of the guess's Fock matrix minus the converged energy (what the
+SCF's first cycle sees); ``response`` = ‖D_host,n − D_{n−1}‖ is how much the new guest
+changed the density of the atoms that were already there (what no guess from step n − 1 holds).
+
+Across one insertion the guess changes; within a step's relaxation the atoms stay and every
+geometry starts from the previous geometry's orbitals (always on in the engine). For steps
+``--relax-steps`` the bench runs ``--geometries`` BFGS geometries of the guests (host fixed)
+and solves each geometry again from the fresh guess: iterations warm (previous geometry) vs
+cold at the same geometries.
+
+Prints one JSON line per SCF comparison and, per functional, basis and mode, the median
+ratios warm/cold. ``--root`` keeps the campaign there and reuses it. Run by hand; not a test.
 """
 
 from __future__ import annotations
@@ -25,14 +40,18 @@ import sys
 import tempfile
 from pathlib import Path
 
+import numpy as np
 import yaml
+from ase.constraints import FixAtoms
 from ase.io import read
+from ase.optimize import BFGS
 from ase.units import Hartree
 from pyscf.scf import chkfile
 
 from ionwell.config.campaign import PyscfEngineConfig
 from ionwell.engines.pyscf_engine import (
     WARM_CONSTRUCTIONS,
+    PyscfCalculator,
     _KohnSham,
     build_mol,
     warm_start_guess,
@@ -41,7 +60,7 @@ from ionwell.engines.pyscf_engine import (
 
 def _structures(root: Path, args: argparse.Namespace) -> list:
     """Run (or reuse) the campaign; returns the structures of steps 0..``--steps``."""
-    name = f"warm-{args.layers}x{args.shells}-{args.xc.replace(',', '_')}-{args.basis}"
+    name = f"warm-{args.layers}x{args.shells}-lda_vwn-sto-3g"
     steps = root / "campaigns" / name / "steps"
     inputs = [steps / f"{n:04d}" / "engine" / "input.extxyz" for n in range(args.steps + 1)]
     if not all(p.is_file() for p in inputs):
@@ -50,7 +69,7 @@ def _structures(root: Path, args: argparse.Namespace) -> list:
             "seed": 1,
             "host": {"builder": {"layers": args.layers, "shells": args.shells, "spacing": 3.6}},
             "guest": {"element": "Li", "charge_mode": "neutral"},
-            "engine": {"kind": "pyscf", "xc": args.xc, "basis": args.basis, "threads": 2},
+            "engine": {"kind": "pyscf", "xc": "lda,vwn", "basis": "sto-3g", "threads": 2},
             "placement": {"galleries_only": args.layers > 1, "within": 3.0},
             "relax": {"enabled": False},
             "stop": {"guests": args.steps, "max_steps": args.steps + 1},
@@ -78,62 +97,141 @@ def _solve(mol, cfg: PyscfEngineConfig, guess, label: str | None = None) -> _Koh
     return ks
 
 
+def _total(dm: np.ndarray) -> np.ndarray:
+    return dm if dm.ndim == 2 else dm[0] + dm[1]
+
+
+def _diagnostics(ks: _KohnSham, dm0) -> dict[str, float]:
+    """How far a guess ``dm0`` (None: PySCF's fresh guess) is from ``ks``'s converged state:
+    Frobenius distance of the densities and the energy after one diagonalisation (eV)."""
+    mf = ks._new_mf(ks.mol)
+    if dm0 is None:
+        dm0 = mf.get_init_guess(ks.mol, "minao")
+    dm0 = np.asarray(dm0)
+    e, c = mf.eig(mf.get_fock(dm=dm0), mf.get_ovlp())
+    dm1 = mf.make_rdm1(c, mf.get_occ(e, c))
+    return {
+        "distance": round(float(np.linalg.norm(_total(dm0) - _total(ks.dm))), 3),
+        "first_cycle_eV": float(f"{(mf.energy_tot(dm1) - ks.mf.e_tot) * Hartree:.3e}"),
+    }
+
+
+def _relaxation(atoms, charge: int, cfg: PyscfEngineConfig, n_guests: int, geometries: int):
+    """Warm (previous geometry) vs cold SCF iterations over ``geometries`` BFGS geometries of
+    the last ``n_guests`` atoms; returns (warm iterations, cold iterations) per geometry."""
+    mol = build_mol(atoms, cfg.basis, charge)
+    ks = _KohnSham(mol, cfg)
+    a = atoms.copy()
+    a.set_constraint(FixAtoms(indices=list(range(len(a) - n_guests))))
+    a.calc = PyscfCalculator(ks)
+    warm, cold, positions = [], [], []
+
+    def record() -> None:
+        warm.append(ks.iterations)
+        positions.append(a.positions.copy())
+
+    opt = BFGS(a, logfile=None, maxstep=0.2)
+    opt.attach(record, interval=1)
+    opt.run(fmax=1e-3, steps=geometries - 1)
+    for pos in positions[1:]:  # the first geometry has no previous one
+        mol_g = build_mol(a.copy(), cfg.basis, charge)
+        mol_g.set_geom_(pos, unit="Angstrom")
+        cold.append(_solve(mol_g, cfg, None).iterations)
+    return warm[1:], cold
+
+
+def _median(values: list[float]) -> float | None:
+    return round(statistics.median(values), 2) if values else None
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--layers", type=int, default=2)
     ap.add_argument("--shells", type=int, default=1)
     ap.add_argument("--steps", type=int, default=4)
     ap.add_argument("--modes", default="neutral,cation")
-    ap.add_argument("--xc", default="lda,vwn")
-    ap.add_argument("--basis", default="sto-3g")
-    ap.add_argument("--constructions", default=",".join(WARM_CONSTRUCTIONS))
+    ap.add_argument("--xc", action="append", help="functional(s), repeatable (default lda,vwn)")
+    ap.add_argument("--basis", action="append", help="basis set(s), repeatable (default sto-3g)")
+    ap.add_argument("--constructions", default="orbitals,blocks")
+    ap.add_argument("--relax-steps", default="1,2", help="steps whose relaxation is measured")
+    ap.add_argument("--geometries", type=int, default=4, help="geometries per relaxation")
+    ap.add_argument("--smearing", type=float, default=0.0, help="Fermi smearing, eV (0: none)")
     ap.add_argument("--threads", type=int, default=2)
     ap.add_argument("--root", type=Path, default=None, help="keep (and reuse) campaigns here")
     args = ap.parse_args()
-    constructions = args.constructions.split(",")
-    cfg = PyscfEngineConfig(xc=args.xc, basis=args.basis, threads=args.threads)
+    constructions = [c for c in args.constructions.split(",") if c]
+    unknown = set(constructions) - set(WARM_CONSTRUCTIONS)
+    if unknown:
+        ap.error(f"--constructions: unknown {sorted(unknown)}; choose from {WARM_CONSTRUCTIONS}")
+    relax_steps = {int(s) for s in args.relax_steps.split(",") if s}
     with tempfile.TemporaryDirectory() as tmp:
         root = args.root or Path(tmp)
         root.mkdir(parents=True, exist_ok=True)
         structures = _structures(root, args)
-        for mode in args.modes.split(","):
-            ratios: dict[str, list[float]] = {c: [] for c in constructions}
-            times: dict[str, list[float]] = {c: [] for c in constructions}
-            worst: dict[str, float] = {c: 0.0 for c in constructions}
-            chk_prev = None
-            for n, atoms in enumerate(structures):
-                mol = build_mol(atoms, cfg.basis, 0 if mode == "neutral" else n)
-                ks = _solve(mol, cfg, None)
-                it_c, t_c, e_c = ks.iterations, ks.scf_seconds, float(ks.mf.e_tot) * Hartree
-                row = {"mode": mode, "step": n, "atoms": len(atoms), "xc": args.xc,
-                       "basis": args.basis, "spin": mol.spin, "cold_iterations": it_c,
-                       "cold_seconds": round(t_c, 2), "cold_solver": ks.solver}  # fmt: skip
-                print(json.dumps(row), flush=True)
-                for c in constructions if chk_prev is not None else ():
-                    dm0, label = warm_start_guess(mol, chk_prev, mol.spin != 0, c)
-                    w = _solve(mol, cfg, dm0, label)
-                    it_w, t_w, e_w = w.iterations, w.scf_seconds, float(w.mf.e_tot) * Hartree
-                    ratios[c].append(it_w / it_c)
-                    times[c].append(t_w / t_c)
-                    worst[c] = max(worst[c], abs(e_w - e_c))
-                    print(json.dumps({
-                        "mode": mode, "step": n, "construction": c, "guess": w.guess,
-                        "iterations": it_w, "seconds": round(t_w, 2), "solver": w.solver,
-                        "ratio": round(it_w / it_c, 2), "time_ratio": round(t_w / t_c, 2),
-                        "energy_minus_cold_eV": float(f"{e_w - e_c:.2e}"),
-                    }), flush=True)  # fmt: skip
-                chk_prev = Path(root) / f"{mode}-{n}.chk"
-                chk_prev.unlink(missing_ok=True)
-                mf = ks.mf
-                chkfile.dump_scf(mf.mol, str(chk_prev), mf.e_tot, mf.mo_energy, mf.mo_coeff,
-                                 mf.mo_occ)  # fmt: skip
-            for c in constructions:
-                print(json.dumps({
-                    "mode": mode, "xc": args.xc, "basis": args.basis, "construction": c,
-                    "median_ratio": round(statistics.median(ratios[c]), 2),
-                    "median_time_ratio": round(statistics.median(times[c]), 2),
-                    "max_abs_energy_diff_eV": float(f"{worst[c]:.2e}"),
-                }), flush=True)  # fmt: skip
+        for xc in args.xc or ["lda,vwn"]:
+            for basis in args.basis or ["sto-3g"]:
+                cfg = PyscfEngineConfig(
+                    xc=xc, basis=basis, smearing=args.smearing, threads=args.threads
+                )
+                for mode in args.modes.split(","):
+                    _series(structures, cfg, mode, constructions, relax_steps, args, root)
+
+
+def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path) -> None:
+    """Steps 0..n of one functional, basis and guest mode; prints rows and the medians."""
+    tag = {"mode": mode, "xc": cfg.xc, "basis": cfg.basis, "smearing": cfg.smearing}
+    ratios: dict[str, list[float]] = {c: [] for c in constructions}
+    times: dict[str, list[float]] = {c: [] for c in constructions}
+    worst: dict[str, float] = {c: 0.0 for c in constructions}
+    relax_ratios: list[float] = []
+    chk_prev = None
+    dm_prev = None
+    for n, atoms in enumerate(structures):
+        charge = 0 if mode == "neutral" else n
+        mol = build_mol(atoms, cfg.basis, charge)
+        ks = _solve(mol, cfg, None)
+        it_c, t_c, e_c = ks.iterations, ks.scf_seconds, float(ks.mf.e_tot) * Hartree
+        row = {**tag, "step": n, "atoms": len(atoms), "spin": mol.spin,
+               "cold_iterations": it_c, "cold_seconds": round(t_c, 2), "cold_solver": ks.solver,
+               "cold_guess": _diagnostics(ks, None)}  # fmt: skip
+        if dm_prev is not None:
+            nao_prev = dm_prev.shape[-1]
+            row["response"] = round(
+                float(np.linalg.norm(_total(ks.dm)[:nao_prev, :nao_prev] - dm_prev)), 3
+            )
+        print(json.dumps(row), flush=True)
+        for c in constructions if chk_prev is not None else ():
+            dm0, label = warm_start_guess(mol, chk_prev, mol.spin != 0, c)
+            w = _solve(mol, cfg, dm0, label)
+            it_w, t_w, e_w = w.iterations, w.scf_seconds, float(w.mf.e_tot) * Hartree
+            ratios[c].append(it_w / it_c)
+            times[c].append(t_w / t_c)
+            worst[c] = max(worst[c], abs(e_w - e_c))
+            print(json.dumps({
+                **tag, "step": n, "construction": c, "guess": w.guess,
+                "iterations": it_w, "seconds": round(t_w, 2), "solver": w.solver,
+                "ratio": round(it_w / it_c, 2), "time_ratio": round(t_w / t_c, 2),
+                "energy_minus_cold_eV": float(f"{e_w - e_c:.2e}"),
+                "warm_guess": _diagnostics(ks, dm0),
+            }), flush=True)  # fmt: skip
+        if n in relax_steps and n >= 1 and args.geometries > 1:
+            warm, cold = _relaxation(atoms, charge, cfg, n, args.geometries)
+            relax_ratios += [w / c for w, c in zip(warm, cold, strict=True)]
+            print(json.dumps({**tag, "step": n, "relaxation": True,
+                              "warm_iterations": warm, "cold_iterations": cold}), flush=True)  # fmt: skip
+        chk_prev = Path(root) / f"{mode}-{n}.chk"
+        chk_prev.unlink(missing_ok=True)
+        mf = ks.mf
+        chkfile.dump_scf(mf.mol, str(chk_prev), mf.e_tot, mf.mo_energy, mf.mo_coeff, mf.mo_occ)
+        dm_prev = _total(ks.dm)
+    summary = {**tag, "relaxation_median_ratio": _median(relax_ratios)}
+    for c in constructions:
+        summary[c] = {
+            "median_ratio": _median(ratios[c]),
+            "median_time_ratio": _median(times[c]),
+            "max_abs_energy_diff_eV": float(f"{worst[c]:.2e}"),
+        }
+    print(json.dumps({"summary": summary}), flush=True)
 
 
 if __name__ == "__main__":

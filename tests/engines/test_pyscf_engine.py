@@ -432,3 +432,30 @@ def test_unusable_settings_are_config_errors(tmp_path, update, ctx, match):
     with pytest.raises(ConfigError, match=match):
         eng.run(tmp_path)
     assert not (tmp_path / OUTPUT).exists()
+
+
+@pytest.mark.slow
+def test_excited_configuration_is_reported_and_smearing_finds_the_lower_state(tmp_path):
+    """Benzene with one Li above and one below the ring (D6h): the two donated electrons go into
+    benzene's degenerate e2u π* pair. Without smearing the SCF must fill one of two equal levels;
+    here DIIS stalls and the second-order solver ends in a configuration with an empty level below
+    a filled one (measured: 3.7 eV, energy 3.0 eV above the smeared state). The step's levels
+    then give the ``empty-level-below-filled`` warning; with Fermi smearing (0.1 eV) the pair
+    shares the electrons, the energy is lower and there is no finding.
+
+    Reference: the aufbau principle (filled levels lowest in a Kohn–Sham ground state without
+    smearing; common practice); the energies are PySCF's own."""
+    from ionwell.science.checks import level_order_findings
+
+    atoms = molecule("C6H6") + Atoms("Li2", positions=[[0, 0, 1.8], [0, 0, -1.8]])
+    plain, _ = _run(atoms, tmp_path / "plain", potential=False)
+    smeared, _ = _run(
+        atoms, tmp_path / "smeared", cfg=FAST.model_copy(update={"smearing": 0.1}), potential=False
+    )
+    assert plain.scf_converged and smeared.scf_converged
+    hole = level_order_findings(1, plain.orbital_energies, plain.occupations, 0.1)
+    # the check is quiet for smeared (fractional) occupations
+    assert level_order_findings(1, smeared.orbital_energies, smeared.occupations, 0.1) == []
+    # no silent wrong answer: an unsmeared state above the smeared one is flagged
+    assert smeared.energy < plain.energy - 1.0  # measured 3.0 eV
+    assert [f.code for f in hole] == ["empty-level-below-filled"]

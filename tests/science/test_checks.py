@@ -17,6 +17,7 @@ from ionwell.science.checks import (
     decision_findings,
     host_digest,
     host_facts,
+    level_order_findings,
     metal_neighbour_distance,
     step_findings,
     worst_severity,
@@ -719,3 +720,24 @@ def test_negative_voltage_step_is_flagged_and_a_positive_profile_is_quiet():
     assert voltage_findings(voltage_profile([0.0, -2.0, -3.5], [0, 1, 2], -1.0), 0.0, {}) == []
     assert voltage_findings(steps, None, {}) == []
     assert [f.code for f in voltage_findings(steps, 1.5, {})] == ["voltage-below-floor"] * 2
+
+
+# level order: the aufbau principle (filled levels lowest without smearing; common practice)
+def test_level_order_flags_a_hole_below_an_empty_level() -> None:
+    levels = [[-10.0, -5.0, -1.0, 0.5]]
+    assert level_order_findings(3, levels, [[2, 2, 0, 0]], 0.1) == []  # aufbau
+    (f,) = level_order_findings(3, levels, [[2, 0, 2, 0]], 0.1)  # -5 eV empty, -1 eV filled
+    assert (f.code, f.severity, f.step) == ("empty-level-below-filled", "warning", 3)
+    assert "4.00 eV" in f.message and "spin" not in f.message
+    # within the tolerance (near-degenerate levels in either order): quiet
+    assert level_order_findings(3, [[-10.0, -5.0, -4.95]], [[2, 0, 2]], 0.1) == []
+    assert level_order_findings(3, levels, [[2, 0, 2, 0]], None) == []  # switched off
+
+
+def test_level_order_names_the_spin_and_skips_smeared_levels() -> None:
+    up, down = [-6.0, -3.0, -2.0], [-6.0, -3.0, -2.5]
+    (f,) = level_order_findings(0, [up, down], [[1, 1, 0], [1, 0, 1]], 0.1)
+    assert "0.50 eV" in f.message and "(spin down)" in f.message
+    # fractional occupations (smearing) are part of the model: no judgement
+    assert level_order_findings(0, [[-5.0, -4.0, 0.0]], [[2.0, 0.4, 1.6]], 0.1) == []
+    assert level_order_findings(0, None, None, 0.1) == []

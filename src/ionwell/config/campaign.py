@@ -342,6 +342,13 @@ class ChecksConfig(_Model):
     """Per-step checks and their bounds (Å unless stated)."""
 
     min_distance: float = Field(0.7, gt=0.0, description="error when two atoms are closer")
+    level_order: float | None = Field(
+        0.1,
+        gt=0.0,
+        le=100.0,
+        description="warn when, with whole occupations, an empty level lies more than this "
+        "below a filled one, eV (an excited configuration; None: off)",
+    )
     guest_host_min: float | None = Field(
         None, gt=0.0, description="error when a guest is closer to a host atom (None: off)"
     )

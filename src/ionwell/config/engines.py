@@ -204,13 +204,19 @@ class PyscfEngineConfig(_Model):
     max_cycle: int = Field(100, ge=1, le=10000, description="SCF iteration cap")
     conv_tol: float = Field(1e-8, gt=0.0, lt=1e-2, description="SCF energy tolerance, hartree")
     level_shift: float = Field(0.0, ge=0.0, description="SCF level shift, hartree")
-    smearing: float = Field(0.0, ge=0.0, description="Fermi smearing width, eV (0: none)")
-    # off by default: measured with bench/warm_start.py (benzene bilayer + 1-3 Li, LDA/STO-3G)
-    # the guess from the previous step's orbitals plus the guests' atomic orbitals (right
-    # electron count and spin) saves no SCF iterations (median warm/cold 1.0 neutral, 1.1 Li⁺):
-    # the iterations go into the host's response to the new guest, which no guess of the old
-    # atoms contains. When DIIS stalls, the warm SCF is checked against a fresh one (it once
-    # reached a state 0.60 eV higher), so it can cost more than it saves
+    smearing: float = Field(
+        0.0,
+        ge=0.0,
+        description="Fermi smearing width, eV (0: none; about 0.1 where guests give electrons to "
+        "degenerate levels, see checks.level_order)",
+    )
+    # off by default: measured with bench/warm_start.py (benzene bilayer + 1-3 Li⁺, LDA and PBE,
+    # STO-3G and 6-31G; Li with 0.1 eV smearing) the guess from the previous step's orbitals plus
+    # the guests' atomic orbitals (right electron count and spin) saves no SCF iterations across
+    # an insertion (median warm/cold 1.1 for Li⁺, 0.9-1.1 for smeared Li): it is 3-5x closer to
+    # the converged density, but the host's unscreened response to the new guest makes the first
+    # cycle overshoot. Geometry to geometry within a relaxation (always on) it needs 0.24-0.52 of
+    # the cold iterations. When DIIS stalls, a warm SCF is checked against a fresh one
     warm_start: bool = Field(
         False,
         description="start the SCF from the previous step's orbitals plus the new guests' atomic "

@@ -9,6 +9,9 @@ code                          severity  meaning
 ============================  ========  ========================================================
 ``scf-not-converged``         error     the engine's SCF did not reach its tolerance
 ``relax-not-converged``       warning   the relaxation stopped at its step cap above ``fmax``
+``empty-level-below-filled``  warning   with whole occupations, an empty level lies more than
+                                        ``level_order`` (eV) below a filled one: the SCF ended
+                                        in an excited configuration, not the ground state
 ``non-finite-positions``      error     a position is NaN or infinite
 ``atoms-too-close``           error     two atoms closer than ``min_distance`` (Å)
 ``guest-on-host-atom``        error     a guest closer than ``guest_host_min`` (Å) to a host atom
@@ -35,7 +38,8 @@ code                          severity  meaning
                                         ``voltage-below-floor``)
 ============================  ========  ========================================================
 
-The first nine look at a step's structure (:func:`step_findings`); the next four at the
+The first nine look at a step's structure (:func:`step_findings`), the next one at its
+electronic levels (:func:`level_order_findings`); the next four at the
 placement decision taken on the step's potential map (:func:`decision_findings`); the last at
 the voltage profile of the analysis (:func:`voltage_findings`).
 
@@ -92,6 +96,7 @@ __all__ = [
     "host_fragments",
     "rim_findings",
     "convergence_findings",
+    "level_order_findings",
     "decision_findings",
     "envelope_findings",
     "guest_packing_findings",
@@ -157,6 +162,61 @@ def convergence_findings(
             )
         )
     return out
+
+
+#: Occupations within this of 0 or of a full level count as whole (no smearing).
+WHOLE_OCCUPATION = 1e-6
+
+
+def level_order_findings(
+    step: int,
+    orbital_energies: Sequence[Sequence[float]] | None,
+    occupations: Sequence[Sequence[float]] | None,
+    tolerance: float | None,
+) -> list[Finding]:
+    """Aufbau order of a step's levels (eV, per spin channel; occupations 0–2 for a shared
+    channel, 0–1 per spin): a warning when an empty level lies more than ``tolerance`` eV below
+    a filled one of the same channel.
+
+    Only whole occupations are judged: with smearing (fractional occupations) levels below the
+    Fermi level may hold less than a full level by design. None for the levels or the
+    tolerance: no finding. In the ground state of a Kohn–Sham calculation without smearing the
+    filled levels are the lowest (aufbau principle; common practice); an SCF that ends with a
+    hole below an empty level, e.g. after a second-order solver kept the occupations it started
+    from among near-degenerate π* levels, describes an excited configuration and its energy is
+    too high.
+    """
+    if tolerance is None or not orbital_energies or not occupations:
+        return []
+    if len(orbital_energies) != len(occupations):
+        return []
+    worst, channel = -math.inf, 0
+    for k, (e, o) in enumerate(zip(orbital_energies, occupations, strict=True)):
+        e, o = np.asarray(e, dtype=float), np.asarray(o, dtype=float)
+        if e.shape != o.shape or not e.size or not np.isfinite(e).all():
+            return []
+        full = 2.0 if len(occupations) == 1 else 1.0
+        whole = (np.abs(o) < WHOLE_OCCUPATION) | (np.abs(o - full) < WHOLE_OCCUPATION)
+        if not whole.all():
+            return []  # smeared: fractional occupations are part of the model
+        filled, empty = o > full / 2, o < full / 2
+        if filled.any() and empty.any():
+            gap = float(e[filled].max() - e[empty].min())
+            if gap > worst:
+                worst, channel = gap, k
+    if worst <= tolerance:
+        return []
+    spin = "" if len(occupations) == 1 else (" (spin up)" if channel == 0 else " (spin down)")
+    return [
+        Finding(
+            severity="warning",
+            code="empty-level-below-filled",
+            message=f"an empty level lies {worst:.2f} eV below a filled one{spin}: the SCF ended "
+            "in an excited configuration, so this step's energy is too high; near-degenerate "
+            "levels (a guest's electron in a host's π* levels) want engine.smearing, e.g. 0.1 eV",
+            step=step,
+        )
+    ]
 
 
 def _label(atoms: Atoms, i: int) -> str:

@@ -857,7 +857,7 @@ def _findings(campaign, paths, step, relaxed, host, result) -> list[checks.Findi
     facts = _host_facts(paths)
     # host atoms that moved since step 0 (none when the relaxation moves only guests)
     moved = facts.moved(relaxed) if campaign.relax.enabled and campaign.relax.move == "all" else []
-    return checks.step_findings(
+    found = checks.step_findings(
         step,
         relaxed,
         len(host),
@@ -869,6 +869,10 @@ def _findings(campaign, paths, step, relaxed, host, result) -> list[checks.Findi
         moved=moved,
         guest=campaign.guest.element,
     )
+    found += checks.level_order_findings(
+        step, result.orbital_energies, result.occupations, ck.level_order
+    )
+    return sorted(found, key=lambda f: -checks.SEVERITY_RANK[f.severity])
 
 
 def _decide(
