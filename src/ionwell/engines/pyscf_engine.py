@@ -72,6 +72,7 @@ from ionwell.engines.results import atomic_write as _atomic_write
 from ionwell.errors import ConfigError
 from ionwell.io.npz import save_npz
 from ionwell.science.charges import compute_charge_sets, occupied_orbitals
+from ionwell.science.checks import level_order_gap
 from ionwell.science.grid import Grid
 
 __all__ = [
@@ -433,17 +434,15 @@ COLD_GUESS = "atomic (minao)"
 
 def _aufbau_violation(mf) -> float:
     """Largest (highest occupied − lowest empty) orbital energy per spin channel, hartree;
-    positive when an empty level lies below an occupied one (not the aufbau occupation)."""
+    positive when an empty level lies below an occupied one (not the aufbau occupation);
+    -inf when there is nothing to compare (see :func:`~ionwell.science.checks.level_order_gap`,
+    which the step check uses on the recorded levels)."""
     e = np.asarray(mf.mo_energy, dtype=float)
     o = np.asarray(mf.mo_occ, dtype=float)
     if e.ndim == 1:
         e, o = e[None], o[None]
-    worst = -math.inf
-    for ec, oc in zip(e, o, strict=True):
-        full, empty = oc > 1e-8, oc <= 1e-8
-        if full.any() and empty.any():
-            worst = max(worst, float(ec[full].max() - ec[empty].min()))
-    return worst
+    found = level_order_gap(e, o)
+    return -math.inf if found is None else found[0]
 
 
 def _keep_occupation(mf, mo_ref: np.ndarray, occ_ref: np.ndarray) -> None:

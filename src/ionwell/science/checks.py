@@ -97,6 +97,7 @@ __all__ = [
     "rim_findings",
     "convergence_findings",
     "level_order_findings",
+    "level_order_gap",
     "decision_findings",
     "envelope_findings",
     "guest_packing_findings",
@@ -168,44 +169,60 @@ def convergence_findings(
 WHOLE_OCCUPATION = 1e-6
 
 
+def level_order_gap(
+    orbital_energies: Sequence[Sequence[float]] | None,
+    occupations: Sequence[Sequence[float]] | None,
+) -> tuple[float, int] | None:
+    """Largest (highest filled − lowest empty) level energy and its spin channel.
+
+    Levels and occupations per spin channel (one shared channel holds 0–2 electrons per level,
+    two channels 0–1); the result is in the units of ``orbital_energies`` and positive when an
+    empty level lies below a filled one (not the aufbau order). None when the levels are
+    missing, do not match their occupations, are not finite, or any occupation is fractional
+    (smearing: levels below the Fermi level may hold less than a full level by design).
+    """
+    if orbital_energies is None or occupations is None:
+        return None
+    if len(orbital_energies) == 0 or len(orbital_energies) != len(occupations):
+        return None
+    full = 2.0 if len(occupations) == 1 else 1.0
+    worst, channel = -math.inf, 0
+    for k, (e, o) in enumerate(zip(orbital_energies, occupations, strict=True)):
+        e, o = np.asarray(e, dtype=float), np.asarray(o, dtype=float)
+        if e.shape != o.shape or not e.size or not np.isfinite(e).all():
+            return None
+        whole = (np.abs(o) < WHOLE_OCCUPATION) | (np.abs(o - full) < WHOLE_OCCUPATION)
+        if not whole.all():
+            return None
+        filled, empty = o > full / 2, o < full / 2
+        if filled.any() and empty.any():
+            gap = float(e[filled].max() - e[empty].min())
+            if gap > worst:
+                worst, channel = gap, k
+    return worst, channel
+
+
 def level_order_findings(
     step: int,
     orbital_energies: Sequence[Sequence[float]] | None,
     occupations: Sequence[Sequence[float]] | None,
     tolerance: float | None,
 ) -> list[Finding]:
-    """Aufbau order of a step's levels (eV, per spin channel; occupations 0–2 for a shared
-    channel, 0–1 per spin): a warning when an empty level lies more than ``tolerance`` eV below
-    a filled one of the same channel.
+    """Aufbau order of a step's levels (eV, per spin channel; see :func:`level_order_gap`): a
+    warning when an empty level lies more than ``tolerance`` eV below a filled one of the same
+    channel.
 
-    Only whole occupations are judged: with smearing (fractional occupations) levels below the
-    Fermi level may hold less than a full level by design. None for the levels or the
-    tolerance: no finding. In the ground state of a Kohn–Sham calculation without smearing the
-    filled levels are the lowest (aufbau principle; common practice); an SCF that ends with a
-    hole below an empty level, e.g. after a second-order solver kept the occupations it started
-    from among near-degenerate π* levels, describes an excited configuration and its energy is
-    too high.
+    Only whole occupations are judged (smeared levels are part of the model). None for the
+    levels or the tolerance: no finding. In the ground state of a Kohn–Sham calculation without
+    smearing the filled levels are the lowest (aufbau principle; common practice); an SCF that
+    ends with a hole below an empty level, e.g. after a second-order solver kept the
+    occupations it started from among near-degenerate π* levels, describes an excited
+    configuration and its energy is too high.
     """
-    if tolerance is None or not orbital_energies or not occupations:
+    found = None if tolerance is None else level_order_gap(orbital_energies, occupations)
+    if found is None or found[0] <= tolerance:
         return []
-    if len(orbital_energies) != len(occupations):
-        return []
-    worst, channel = -math.inf, 0
-    for k, (e, o) in enumerate(zip(orbital_energies, occupations, strict=True)):
-        e, o = np.asarray(e, dtype=float), np.asarray(o, dtype=float)
-        if e.shape != o.shape or not e.size or not np.isfinite(e).all():
-            return []
-        full = 2.0 if len(occupations) == 1 else 1.0
-        whole = (np.abs(o) < WHOLE_OCCUPATION) | (np.abs(o - full) < WHOLE_OCCUPATION)
-        if not whole.all():
-            return []  # smeared: fractional occupations are part of the model
-        filled, empty = o > full / 2, o < full / 2
-        if filled.any() and empty.any():
-            gap = float(e[filled].max() - e[empty].min())
-            if gap > worst:
-                worst, channel = gap, k
-    if worst <= tolerance:
-        return []
+    worst, channel = found
     spin = "" if len(occupations) == 1 else (" (spin up)" if channel == 0 else " (spin down)")
     return [
         Finding(
