@@ -16,12 +16,26 @@ _FORMAT = "%(asctime)s ionwell | %(message)s"
 _configured: set[str] = set()
 
 
+class _StderrHandler(logging.StreamHandler):
+    """A stream handler on the ``sys.stderr`` of the moment, not the one at set-up: a caller
+    that swaps stderr and closes its own (pytest's capture, an embedding program) would
+    otherwise leave a handler writing to a closed file."""
+
+    @property
+    def stream(self):  # type: ignore[override]
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, _value) -> None:
+        pass
+
+
 def cli_logging(verbose: bool = False) -> None:
     """Progress lines on stderr for the ``ionwell`` command."""
     if "stream" in _configured:
         return
     root = logging.getLogger("ionwell")
-    h = logging.StreamHandler(sys.stderr)
+    h = _StderrHandler()
     h.setFormatter(logging.Formatter(_FORMAT, "%H:%M:%S"))
     root.addHandler(h)
     root.setLevel(logging.DEBUG if verbose else logging.INFO)

@@ -780,3 +780,56 @@ def test_quantum_espresso_input_has_a_cell_on_every_step_and_periodic_kpoints(tm
     written = read(tmp_path / "sheet" / "pw.in", format="espresso-in")
     np.testing.assert_allclose(np.asarray(written.cell), np.asarray(sheet.cell), atol=1e-6)
     np.testing.assert_allclose(written.positions, sheet.positions, atol=1e-6)
+
+
+def test_restart_files_that_do_not_converge_are_dropped_for_a_fresh_guess(tmp_path):
+    """An attempt from restart files that does not converge is tried once more, same settings,
+    from the program's own guess (run_engine); the files are removed, the retry is recorded as
+    a remedy and the step as a cold start. The restart file here is a real PySCF checkpoint of
+    the same water whose orbitals were replaced by random orthonormal ones (seed 0): a state
+    an interrupted SCF can leave. Measured with this runner (LDA/STO-3G, grid level 1): water
+    from the fresh guess converges in 6 cycles, from that checkpoint in 8, so with max_cycle 6
+    only the fresh start converges."""
+    import scipy.linalg
+    from pyscf import gto
+    from pyscf.scf import chkfile
+
+    from ionwell.engines.run import run_engine
+
+    template = TEMPLATE.replace("grid_level 1\n", "grid_level 1\nmax_cycle 6\n")
+    assert "max_cycle 6" in template
+    campaign = _campaign(
+        tmp_path, {**COMMAND, "input": {"file": "job.inp", "template_text": template}}
+    )
+    water = molecule("H2O")
+    ctx = ComputeContext(step=0)
+    work = tmp_path / "engine"
+
+    cold = run_engine(campaign, water, tmp_path / "cold", ctx)
+    assert cold.result.scf_converged and cold.remedies == []
+
+    # the checkpoint a stopped attempt left, gone astray
+    work.mkdir()
+    shutil.copy(tmp_path / "cold" / "runner.chk", work / "runner.chk")
+    mol = chkfile.load_mol(str(work / "runner.chk"))
+    assert isinstance(mol, gto.Mole) and mol.natm == 3
+    scf = chkfile.load(str(work / "runner.chk"), "scf")
+    s = mol.intor("int1e_ovlp")
+    q, _ = np.linalg.qr(np.random.default_rng(0).normal(size=s.shape))
+    chkfile.dump(
+        str(work / "runner.chk"), "scf/mo_coeff", scipy.linalg.sqrtm(np.linalg.inv(s)).real @ q
+    )
+    assert scf["mo_coeff"].shape == s.shape
+
+    out = run_engine(campaign, water, work, ctx)
+    log = (work / "job.log").read_text()
+    assert out.result.scf_converged and not out.result.warm_started
+    assert out.remedies == [
+        "SCF retry with a fresh guess (the restart files did not converge): converged"
+    ]
+    assert out.result.guess == "cold: an attempt from restart files did not converge"
+    assert any("they were removed (runner.chk)" in n for n in out.result.notes)
+    assert "initial guess: superposition of atoms" in log and "restart: initial" not in log
+    assert "restart no" in (work / "job.inp").read_text()
+    # the same SCF solution as the fresh run: 1e-6 eV
+    assert out.result.energy == pytest.approx(cold.result.energy, abs=1e-6)

@@ -14,6 +14,7 @@ Input (keywords one per line, then the geometry block in Å):
     basis sto-3g
     xc lda,vwn
     grid_level 1
+    max_cycle 50            # SCF cycles at most (PySCF's default 50)
     spacing 0.4             # cube spacing, Å
     margin 3.0              # cube margin around the atoms, Å
     geometry
@@ -107,6 +108,7 @@ def main() -> int:
     mf.xc = keys.get("xc", "lda,vwn")
     mf.grids.level = int(keys.get("grid_level", 3))
     mf.conv_tol = 1e-9
+    mf.max_cycle = int(keys.get("max_cycle", 50))
     mf.chkfile = "runner.chk"
     print(f"pyscf-runner (PySCF {lib.__version__ if hasattr(lib, '__version__') else ''})")
     print(f"{mol.natm} atoms, charge {mol.charge}, 2S {mol.spin}", flush=True)

@@ -28,7 +28,9 @@ class ComputeContext(BaseModel):
     ``charge`` and ``spin`` (2S, unpaired electrons) are for the whole system; ``spin=None``
     lets the engine choose (lowest multiplicity allowed by the electron count). ``movable`` lists
     atom indices the relaxation may move (empty: no relaxation). ``previous`` is the engine folder
-    of the previous step, for warm starts.
+    of the previous step, for warm starts. ``cold``: start from the program's own initial guess,
+    discarding restart files an earlier attempt left in the engine folder (set by
+    :func:`ionwell.engines.run.run_engine` after an attempt from restart files did not converge).
     """
 
     model_config = ConfigDict(frozen=True, arbitrary_types_allowed=True)
@@ -39,6 +41,7 @@ class ComputeContext(BaseModel):
     movable: tuple[int, ...] = ()
     previous: Path | None = None
     potential: bool = True  # False: energy only, no potential map (e.g. a guest reference)
+    cold: bool = False
 
 
 class StepResult(BaseModel):

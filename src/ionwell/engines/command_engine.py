@@ -258,6 +258,20 @@ class CommandEngine:
         notes: list[str] = []
         restart_from = None
         cold = "cold: the program's own initial guess"
+        if context.cold:
+            for p in sorted(keep):
+                if p.is_dir():
+                    shutil.rmtree(p)
+                else:
+                    p.unlink(missing_ok=True)
+            if keep:
+                notes.append(
+                    "cold start: the attempt from the restart files in place did not converge; "
+                    f"they were removed ({', '.join(sorted(p.name for p in keep))})"
+                )
+                log.info("%s%s", where, notes[-1])
+            keep = set()
+            cold = "cold: an attempt from restart files did not converge"
         if keep:
             restart_from = "earlier attempt"
             log.info(
@@ -383,8 +397,10 @@ class CommandEngine:
             except EngineRunError as err:
                 failed = self.cfg.converged.scf_failed
                 if i == 0 and failed is not None and self._says(workdir, failed):
+                    state = json.loads((workdir / STATE).read_text())
                     raise ScfNotConverged(
-                        f"step {step}: {argv[0]} stopped: its SCF did not converge ({err})"
+                        f"step {step}: {argv[0]} stopped: its SCF did not converge ({err})",
+                        warm=state.get("restart") is not None,
                     ) from None
                 raise
         state = json.loads((workdir / STATE).read_text())

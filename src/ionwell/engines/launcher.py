@@ -53,7 +53,12 @@ class EngineRunError(IonwellError):
 
 class ScfNotConverged(EngineRunError):
     """The program stopped because its SCF did not converge (its output says so): the SCF
-    remedies retry it at the same structure; it is not a failure of the machine."""
+    remedies retry it at the same structure; it is not a failure of the machine. ``warm``: the
+    attempt had restart files in place (the retry then starts from the program's own guess)."""
+
+    def __init__(self, message: str, warm: bool = False) -> None:
+        super().__init__(message)
+        self.warm = warm
 
 
 class SoftStopped(EngineRunError):

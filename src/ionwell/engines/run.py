@@ -126,28 +126,46 @@ def run_engine(
     last_error: ScfNotConverged | None = None
     result: StepResult | None = None
     pot: Grid | None = None
-    for what, variant in scf_variants(campaign):
+    attempts = list(scf_variants(campaign))
+    ctx = context
+    k = 0
+    while k < len(attempts):
+        what, variant = attempts[k]
         engine = get_engine(variant)
         if tried:
             log.warning("step %04d: SCF not converged; retrying with %s", context.step, what)
-        engine.prepare(atoms, workdir, context)
+        engine.prepare(atoms, workdir, ctx)
+        label = f"SCF retry with {what}" if tried else "first try"
+        warm = False
         try:
             execute(variant, workdir, context.step, relative)
         except ScfNotConverged as err:  # the program stopped on its unconverged SCF
-            tried.append(f"SCF retry with {what}: not converged" if tried else "first try")
-            last_error = err
-            continue
-        last_error = None
-        try:
-            result, pot = engine.collect(workdir)
-        except EngineOutputError as err:
-            if not tolerate_parse_errors:
-                raise
-            return Computed(result=None, potential=None, remedies=tried[1:], parse_error=str(err))
-        verdict = "converged" if result.scf_converged else "not converged"
-        tried.append(f"SCF retry with {what}: {verdict}" if tried else "first try")
-        if result.scf_converged:
-            break
+            tried.append(f"{label}: not converged" if tried else label)
+            last_error, warm = err, err.warm
+        else:
+            last_error = None
+            try:
+                result, pot = engine.collect(workdir)
+            except EngineOutputError as err:
+                if not tolerate_parse_errors:
+                    raise
+                return Computed(
+                    result=None, potential=None, remedies=tried[1:], parse_error=str(err)
+                )
+            verdict = "converged" if result.scf_converged else "not converged"
+            tried.append(f"{label}: {verdict}" if tried else label)
+            if result.scf_converged:
+                break
+            warm = result.warm_started
+        if k == 0 and warm and not ctx.cold:
+            # restart files (the previous step's, or those a stopped attempt left) can hold a
+            # state the SCF does not get out of: the same settings once more from the
+            # program's own guess, and no previous-step restart for the remedies after it
+            ctx = context.model_copy(update={"cold": True, "previous": None})
+            attempts.insert(1, ("a fresh guess (the restart files did not converge)", variant))
+        else:
+            ctx = ctx.model_copy(update={"cold": False})
+        k += 1
     if last_error is not None:  # the last try stopped on its SCF: no result to record
         raise ScfNotConverged(
             f"{last_error}; the SCF did not converge with any remedy "
