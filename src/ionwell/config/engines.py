@@ -214,9 +214,9 @@ class PyscfEngineConfig(_Model):
     # STO-3G and 6-31G; Li with 0.1 eV smearing) the guess from the previous step's orbitals plus
     # the guests' atomic orbitals (right electron count and spin) saves no SCF iterations across
     # an insertion (median warm/cold 1.1 for Li⁺, 0.9-1.1 for smeared Li): it is 3-5x closer to
-    # the converged density, but the host's unscreened response to the new guest makes the first
-    # cycle overshoot. Geometry to geometry within a relaxation (always on) it needs 0.24-0.52 of
-    # the cold iterations. When DIIS stalls, a warm SCF is checked against a fresh one
+    # the converged density, and even one Newton step on top of it (5-10x closer again) leaves
+    # 7-9 DIIS cycles, since cycles follow the logarithm of the guess's error. Geometry to
+    # geometry within a relaxation (always on) it needs 0.24-0.52 of the cold iterations. When DIIS stalls, a warm SCF is checked against a fresh one
     warm_start: bool = Field(
         False,
         description="start the SCF from the previous step's orbitals plus the new guests' atomic "
