@@ -2,12 +2,13 @@
 
     python bench/warm_start.py [--layers 2] [--shells 1] [--steps 4] [--modes neutral,cation]
                                [--xc lda,vwn] [--xc pbe] [--basis sto-3g] [--basis 6-31g]
-                               [--relax-steps 1,2] [--geometries 4] [--smearing 0]
+                               [--relax-steps 1,2] [--geometries 4] [--smearing 0] [--newton J,full]
                                [--root DIR]
 
 One campaign of ``--steps`` neutral Li insertions into a flake (default: a benzene bilayer, 24
 atoms; the issue's coronene bilayer is ``--shells 2``, ~700 s per single point on two cores)
-gives the structures (LDA/STO-3G, fresh guesses, relaxation off). For each functional, basis
+gives the structures (LDA/STO-3G, fresh guesses, relaxation off; ``--placement-engine tblite``:
+GFN2-xTB, for hosts where a DFT campaign would take hours). For each functional, basis
 and guest mode the structures are then solved again, SCF only, through the engine's SCF driver
 (DIIS, maximum overlap for open shells, the Newton fallback): step n with n guests and charge 0
 (neutral) or +n (cation, every Li a Li⁺), from PySCF's fresh guess (cold) and, for n ≥ 1, from
@@ -26,7 +27,7 @@ geometry starts from the previous geometry's orbitals (always on in the engine).
 and solves each geometry again from the fresh guess: iterations warm (previous geometry) vs
 cold at the same geometries.
 
-``--newton`` (closed shells: the Li⁺ mode) also starts each warm guess's SCF after one Newton
+``--newton J,full`` (closed shells: the Li⁺ mode) also starts each warm guess's SCF after one Newton
 step: the orbital rotation that makes the linearised Fock matrix block-diagonal, solved by
 preconditioned conjugate gradients, with the Hartree kernel only (``+newton(J)``: density-fitted
 J builds) and with PySCF's full linear-response kernel (``+newton(full)``, ``gen_response``).
@@ -68,7 +69,13 @@ from ionwell.engines.pyscf_engine import (
 
 def _structures(root: Path, args: argparse.Namespace) -> list:
     """Run (or reuse) the campaign; returns the structures of steps 0..``--steps``."""
-    name = f"warm-{args.layers}x{args.shells}-lda_vwn-sto-3g"
+    engine = (
+        {"kind": "pyscf", "xc": "lda,vwn", "basis": "sto-3g", "threads": 2}
+        if args.placement_engine == "pyscf"
+        else {"kind": "tblite", "threads": 2}
+    )
+    tag = "lda_vwn-sto-3g" if args.placement_engine == "pyscf" else "gfn2"
+    name = f"warm-{args.layers}x{args.shells}-{tag}"
     steps = root / "campaigns" / name / "steps"
     inputs = [steps / f"{n:04d}" / "engine" / "input.extxyz" for n in range(args.steps + 1)]
     if not all(p.is_file() for p in inputs):
@@ -77,7 +84,7 @@ def _structures(root: Path, args: argparse.Namespace) -> list:
             "seed": 1,
             "host": {"builder": {"layers": args.layers, "shells": args.shells, "spacing": 3.6}},
             "guest": {"element": "Li", "charge_mode": "neutral"},
-            "engine": {"kind": "pyscf", "xc": "lda,vwn", "basis": "sto-3g", "threads": 2},
+            "engine": engine,
             "placement": {"galleries_only": args.layers > 1, "within": 3.0},
             "relax": {"enabled": False},
             "stop": {"guests": args.steps, "max_steps": args.steps + 1},
@@ -217,7 +224,17 @@ def main() -> None:
     ap.add_argument("--relax-steps", default="1,2", help="steps whose relaxation is measured")
     ap.add_argument("--geometries", type=int, default=4, help="geometries per relaxation")
     ap.add_argument("--smearing", type=float, default=0.0, help="Fermi smearing, eV (0: none)")
-    ap.add_argument("--newton", action="store_true", help="also one Newton step (closed shells)")
+    ap.add_argument(
+        "--placement-engine",
+        choices=("pyscf", "tblite"),
+        default="pyscf",
+        help="engine of the campaign that places the guests (tblite: GFN2-xTB, for large hosts)",
+    )
+    ap.add_argument(
+        "--newton",
+        default="",
+        help="also one Newton step with these kernels (J, full; comma-separated; closed shells)",
+    )
     ap.add_argument("--threads", type=int, default=2)
     ap.add_argument("--root", type=Path, default=None, help="keep (and reuse) campaigns here")
     args = ap.parse_args()
@@ -276,7 +293,7 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
                 "energy_minus_cold_eV": float(f"{e_w - e_c:.2e}"),
                 "warm_guess": _diagnostics(ks, dm0),
             }), flush=True)  # fmt: skip
-            for kernel in ("J", "full") if args.newton and mol.spin == 0 else ():
+            for kernel in [k for k in args.newton.split(",") if k] if mol.spin == 0 else ():
                 dm1, n_cg, t_cg, gap = _newton_step(w, dm0, kernel)
                 v = _solve(mol, cfg, dm1, f"{label} + Newton step ({kernel})")
                 # cost: the Fock build of the step plus the SCF after it

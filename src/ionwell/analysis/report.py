@@ -38,6 +38,7 @@ from ionwell.analysis.plots import charts
 from ionwell.analysis.tables import AnalysisSummary, analyse, is_current
 from ionwell.audit.status import CampaignStatus, campaign_status
 from ionwell.errors import IonwellError
+from ionwell.science import energetics
 from ionwell.science.checks import Finding
 from ionwell.store.campaign import CampaignPaths, atomic_write_text, load_frozen, step_label
 from ionwell.store.paths import StepPaths
@@ -718,11 +719,6 @@ def render_settings(summary: AnalysisSummary) -> str:
     return _facts(facts)
 
 
-def formula_text(unit: dict[str, int]) -> str:
-    """A formula unit as text, e.g. ``{"C": 6}`` → ``C6``."""
-    return "".join(f"{el}{k if k != 1 else ''}" for el, k in unit.items())
-
-
 def _sections(rep: CampaignReport) -> list[tuple[str, str]]:
     """(key, title) of the subsections of one campaign; the anchor is ``<campaign id>-<key>``."""
     items = [
@@ -750,7 +746,7 @@ def render_campaign(rep: CampaignReport, prefix: str) -> str:
         ("numbers from", summary.method or rep.engine),
     ]
     if summary.formula_unit:
-        unit = formula_text(summary.formula_unit)
+        unit = energetics.formula_text(summary.formula_unit)
         facts.append(("formula unit", f"{unit}: x counts {rep.guest} per {unit}"))
     if summary.charge_scheme:
         facts.append(("charges", summary.charge_scheme))

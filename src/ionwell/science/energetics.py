@@ -31,6 +31,7 @@ __all__ = [
     "capacity_mah_per_g",
     "energy_above_hull",
     "formation_energies",
+    "formula_text",
     "lower_hull",
     "voltage_profile",
 ]
@@ -144,6 +145,11 @@ def voltage_profile(
             )
         )
     return steps
+
+
+def formula_text(unit: Mapping[str, int]) -> str:
+    """A formula unit as text, e.g. ``{"C": 6}`` → ``C6``."""
+    return "".join(f"{el}{k if k != 1 else ''}" for el, k in unit.items())
 
 
 def capacity_mah_per_g(x: float, formula_unit: Mapping[str, int], z: int = 1) -> float:

@@ -24,7 +24,6 @@ import numpy as np
 from ionwell.analysis.plots.common import (
     COMPARISON_DPI,
     DPI,
-    formula,
     png_bytes,
     pyplot,
     save,
@@ -91,7 +90,8 @@ def hull_plot(
                label="on the hull")  # fmt: skip
     ax.scatter([x[i] for i in off], [ef[i] for i in off], s=40, facecolors="none",
                edgecolors="tab:red", zorder=3, label="above the hull")  # fmt: skip
-    ax.set_xlabel(f"x in {guest}$_x${formula(unit)} (guests per {formula(unit)})")
+    host = energetics.formula_text(unit)
+    ax.set_xlabel(f"x in {guest}$_x${host} (guests per {host})")
     ax.set_ylabel("formation energy / eV")
     ax.axhline(0, color="0.8", lw=0.8)
     ax.legend(frameon=False)
@@ -118,7 +118,7 @@ def voltage_plot(
         if max(v) - min(v) < 0.5:  # a flat profile: show it in a window of ±0.5 V, not ±0.05
             mid = 0.5 * (max(v) + min(v))
             ax.set_ylim(mid - 0.5, mid + 0.5)
-    ax.set_xlabel(f"capacity / mAh g$^{{-1}}$ of {formula(unit)}")
+    ax.set_xlabel(f"capacity / mAh g$^{{-1}}$ of {energetics.formula_text(unit)}")
     ax.set_ylabel(f"voltage vs {guest}/{guest}$^{{{z}+}}$ / V" if z > 1 else
                   f"voltage vs {guest}/{guest}$^+$ / V")  # fmt: skip
     ax.set_title("Voltage steps between hull vertices (model result)")

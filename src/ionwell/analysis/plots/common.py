@@ -14,7 +14,6 @@ __all__ = [
     "CAUTION_FONTSIZE",
     "COMPARISON_DPI",
     "DPI",
-    "formula",
     "png_bytes",
     "pyplot",
     "save",
@@ -101,8 +100,3 @@ def png_bytes(fig) -> bytes:
     buf = io.BytesIO()
     fig.savefig(buf, format="png")
     return buf.getvalue()
-
-
-def formula(unit: dict[str, int]) -> str:
-    """The formula unit as text, e.g. ``{"C": 6}`` → ``C6``."""
-    return "".join(f"{el}{k if k != 1 else ''}" for el, k in unit.items())
