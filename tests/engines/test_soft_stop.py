@@ -51,7 +51,16 @@ def test_the_compute_job_asks_slurm_for_the_warning_signal():
     # at most half the first attempt's limit; further flags follow
     c = _campaign(walltime=1, stop_before=300, extra="--qos=long")
     assert stop_seconds(c) == 30
-    assert step_resources(c)["slurm_extra"] == "--signal=USR1@30 '--qos=long'"
+    assert step_resources(c)["slurm_extra"] == "--signal=USR1@30 --qos=long"
+    # several flags stay several words; a quoted value stays one (sbatch runs through a shell)
+    c = _campaign(stop_before=0, extra="--qos=long  --comment='Li into coronene'")
+    assert step_resources(c)["slurm_extra"] == "--qos=long '--comment=Li into coronene'"
+    import shlex
+
+    assert shlex.split(step_resources(c)["slurm_extra"]) == [
+        "--qos=long",
+        "--comment=Li into coronene",
+    ]
     # switched off
     c = _campaign(stop_before=0)
     assert "slurm_extra" not in step_resources(c)
@@ -60,6 +69,8 @@ def test_the_compute_job_asks_slurm_for_the_warning_signal():
 def test_bad_settings_are_refused_naming_the_field():
     with pytest.raises(ConfigError, match="stop_before"):
         _campaign(stop_before=-5)
+    with pytest.raises(ConfigError, match=r"resources\.compute\.extra.*not valid shell words"):
+        _campaign(extra="--comment='unclosed")
     from pydantic import ValidationError
 
     from ionwell.config.engines import SoftStopSpec

@@ -11,6 +11,7 @@ import difflib
 import json
 import math
 import re
+import shlex
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
@@ -442,7 +443,20 @@ class ComputeResources(_Model):
     )
     partition: str | None = Field(None, description="partition (SLURM) or queue (PBS)")
     account: str | None = Field(None, description="account to charge")
-    extra: str | None = Field(None, description="further scheduler flags, e.g. '--qos=long'")
+    extra: str | None = Field(
+        None,
+        description="further scheduler flags, shell words, e.g. '--qos=long --comment=\"li run\"'",
+    )
+
+    @field_validator("extra")
+    @classmethod
+    def _shell_words(cls, v: str | None) -> str | None:
+        if v is not None:
+            try:
+                shlex.split(v)
+            except ValueError as err:  # an unclosed quote
+                raise ValueError(f"not valid shell words ({err}): {v!r}") from None
+        return v
 
 
 class ResourcesConfig(_Model):

@@ -15,6 +15,7 @@ and would die of it. The compute body then stops the program through its soft-st
 from __future__ import annotations
 
 import math
+import shlex
 
 from ionwell.config.campaign import Campaign
 
@@ -57,8 +58,8 @@ def step_resources(campaign: Campaign) -> dict[str, object]:
     lead = stop_seconds(campaign)
     if lead > 0:
         extra.append(f"--signal=USR1@{lead}")
-    if c.extra:
-        extra.append(f"'{c.extra}'")
+    if c.extra:  # each flag its own word (sbatch is called through a shell)
+        extra.append(shlex.join(shlex.split(c.extra)))
     if extra:
         out["slurm_extra"] = " ".join(extra)
     return out
