@@ -19,6 +19,8 @@ class IonwellError(Exception):
     #: False for an error that fails the same way on every try (bad input): a step job that
     #: raises it is not retried (see :func:`error_kind`)
     retryable: bool = True
+    #: the :data:`ErrorKind` of an error that is not retryable
+    final_kind: ErrorKind = "input"
 
 
 class ConfigError(IonwellError):
@@ -69,9 +71,10 @@ class StepFailedError(IonwellError):
 
 
 #: what kind of failure a step met: ``input`` (bad input: fix the config or a file),
+#: ``scf`` (the SCF did not converge with any remedy: change the engine's settings),
 #: ``disk`` (no space left), ``memory`` (out of memory) — none of them helped by an immediate
 #: retry — or ``transient`` (a killed job, a lost node, an unreadable output: retried)
-ErrorKind = Literal["input", "disk", "memory", "transient"]
+ErrorKind = Literal["input", "scf", "disk", "memory", "transient"]
 
 _DISK_FULL = (errno.ENOSPC, errno.EDQUOT)
 
@@ -90,7 +93,7 @@ def error_kind(err: BaseException) -> ErrorKind:
             return "memory"
         cause = cause.__cause__ or cause.__context__
     if isinstance(err, IonwellError):
-        return "transient" if err.retryable else "input"
+        return "transient" if err.retryable else err.final_kind
     return "transient"
 
 

@@ -392,5 +392,10 @@ def test_a_calculator_that_raises_on_its_scf_is_retried_with_its_remedies(tmp_pa
     assert out.remedies == ["SCF retry with maxiter 300: converged"]
     # without a remedy that helps, the step fails naming the SCF, not the calculator
     data["engine"]["scf_remedies"] = [{"name": "maxiter 50", "parameters": {"maxiter": 50}}]
-    with pytest.raises(ScfNotConverged, match="did not converge with any remedy"):
+    with pytest.raises(ScfNotConverged, match="did not converge with any remedy") as info:
         run_engine(parse_campaign(data), molecule("H2"), tmp_path / "b", ctx)
+    # after the last remedy the step job fails for good: Snakemake would only repeat it
+    from ionwell.errors import describe_exception, error_kind
+
+    assert error_kind(info.value) == "scf"
+    assert "SCF retry with maxiter 50: not converged" in describe_exception(info.value)

@@ -54,7 +54,12 @@ class EngineRunError(IonwellError):
 class ScfNotConverged(EngineRunError):
     """The program stopped because its SCF did not converge (its output says so): the SCF
     remedies retry it at the same structure; it is not a failure of the machine. ``warm``: the
-    attempt had restart files in place (the retry then starts from the program's own guess)."""
+    attempt had restart files in place (the retry then starts from the program's own guess).
+    Raised out of :func:`ionwell.engines.run.run_engine` after the last remedy, it fails the
+    same way on every try: the step job is not retried (kind ``scf``)."""
+
+    retryable = False
+    final_kind = "scf"
 
     def __init__(self, message: str, warm: bool = False) -> None:
         super().__init__(message)

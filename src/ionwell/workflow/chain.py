@@ -175,8 +175,8 @@ class StepStatus(BaseModel):
 
 class StepError(BaseModel):
     """Why the latest attempt at a step failed (the step is not finished). ``kind``: ``input``,
-    ``disk`` and ``memory`` fail the same way on every try (not retried; fix the cause, then
-    ``ionwell run`` again), ``transient`` ones are retried."""
+    ``scf``, ``disk`` and ``memory`` fail the same way on every try (not retried; fix the cause,
+    then ``ionwell run`` again), ``transient`` ones are retried."""
 
     step: int
     message: str
