@@ -267,6 +267,43 @@ def test_remote_campaign_reattaches_after_the_controller_is_killed(
 
 
 @pytest.mark.slow
+def test_remote_scf_failure_goes_on_to_the_next_remedy(slurm_cluster, sshd_server, tmp_path):
+    """The runner with max_cycle 2 does not converge benzene and, told to stop on it, exits 1
+    with 'SCF did not converge' (as pw.x does). In a remote job (real SLURM behind a real
+    sshd) the job says so (exit 3), the controller submits the next SCF remedy (max_cycle 60)
+    as a new job and the step is recorded with it; nothing is retried blindly."""
+    template = TEMPLATE.replace(
+        "grid_level 1\n", "grid_level 1\nmax_cycle ${max_cycle}\nstop_unconverged yes\n"
+    )
+    engine = {
+        **COMMAND,
+        "input": {"file": "job.inp", "template_text": template},
+        "settings": {"max_cycle": 2},
+        "scf_remedies": [{"name": "60 cycles", "settings": {"max_cycle": 60}}],
+        "converged": {
+            **COMMAND["converged"],
+            "scf_failed": {"file": "job.log", "regex": "^SCF did not converge"},
+        },
+    }
+    cfg = _config(
+        tmp_path,
+        "scfremote",
+        engine=engine,
+        remote=_remote(sshd_server, tmp_path),
+        stop={"max_steps": 0},  # the host alone
+    )
+    proc = _run(cfg, tmp_path, timeout=600)
+    assert proc.returncode == 0, proc.stdout[-2000:] + proc.stderr[-3000:]
+    recs = _records(tmp_path, "scfremote")
+    assert [r.step for r in recs] == [0]
+    assert recs[0].remedies == ["SCF retry with 60 cycles: converged"], recs[0]
+    jobs = slurm_cluster.submissions("iw-scfremote-0000")
+    assert len(jobs) == 2, jobs  # the first try and the remedy, each once
+    log = (tmp_path / "campaigns/scfremote/steps/0000/engine/job.log").read_text()
+    assert "SCF converged" in log
+
+
+@pytest.mark.slow
 def test_remote_unknown_host_key_is_refused(sshd_server, tmp_path):
     empty = tmp_path / "known_hosts"
     empty.write_text("")

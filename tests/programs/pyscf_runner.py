@@ -15,6 +15,7 @@ Input (keywords one per line, then the geometry block in Å):
     xc lda,vwn
     grid_level 1
     max_cycle 50            # SCF cycles at most (PySCF's default 50)
+    stop_unconverged no     # yes: exit with status 1 after an unconverged SCF (as pw.x does)
     spacing 0.4             # cube spacing, Å
     margin 3.0              # cube margin around the atoms, Å
     geometry
@@ -131,6 +132,8 @@ def main() -> int:
         print("SCF converged", flush=True)
     else:
         print("SCF did not converge", flush=True)
+        if keys.get("stop_unconverged") == "yes":
+            sys.exit(1)
     if fail == "nan":
         print("total energy nan hartree")
     elif fail != "noenergy":

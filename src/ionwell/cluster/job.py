@@ -4,8 +4,9 @@
 
 ``FOLDER`` holds the engine inputs staged by :mod:`ionwell.cluster.remote` and ``job.json`` (engine,
 relaxation and launcher settings). In-process engines run here; a ``command`` engine runs its
-program through the launcher. Exit code 0 when the engine finished, 1 with one message on
-standard error otherwise.
+program through the launcher. Exit code 0 when the engine finished, :data:`SCF_EXIT` (3) when
+the program stopped on its unconverged SCF (the controller then tries the next SCF remedy), 1
+with one message on standard error otherwise.
 """
 
 from __future__ import annotations
@@ -18,10 +19,14 @@ from pydantic import BaseModel, field_validator
 
 from ionwell.config.campaign import EngineConfig, LauncherConfig, RelaxConfig
 from ionwell.config.engines import default_engine_kind
+from ionwell.engines.launcher import ScfNotConverged
 from ionwell.engines.run import execute
 from ionwell.errors import IonwellError
 
-__all__ = ["JobSpec", "main", "run_folder"]
+__all__ = ["SCF_EXIT", "JobSpec", "main", "run_folder"]
+
+#: Exit code of a job whose program stopped on its unconverged SCF.
+SCF_EXIT = 3
 
 
 class JobSpec(BaseModel):
@@ -54,6 +59,9 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     try:
         run_folder(Path(args[0]))
+    except ScfNotConverged as err:
+        print(f"ionwell remote job: SCF not converged: {err}", file=sys.stderr)
+        return SCF_EXIT
     except IonwellError as err:
         print(f"ionwell remote job: error: {err}", file=sys.stderr)
         return 1

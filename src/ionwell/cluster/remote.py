@@ -38,7 +38,10 @@ from pathlib import Path
 
 from pydantic import BaseModel
 
+from ionwell.cluster.job import SCF_EXIT
 from ionwell.config.campaign import Campaign, RemoteConfig
+from ionwell.engines.command_engine import restart_in_place
+from ionwell.engines.launcher import ScfNotConverged
 from ionwell.engines.results import CONTEXT, INPUT
 from ionwell.errors import IonwellError
 from ionwell.store.campaign import atomic_write_json
@@ -413,6 +416,12 @@ def execute_remote(
             f"step {step}: remote job {job.job_id} left the queue without finishing (killed by "
             f"its time limit of {job.walltime_minutes} min, or failed); its log is "
             f"{workdir / JOB_LOG}; the next attempt continues from the restart files"
+        )
+    if exit_text.strip() == str(SCF_EXIT):  # the SCF remedies go on, as for a local run
+        raise ScfNotConverged(
+            f"step {step}: remote job {job.job_id}: the program stopped on its unconverged SCF "
+            f"(see {workdir / JOB_LOG})",
+            warm=restart_in_place(workdir),
         )
     if exit_text.strip() != "0":
         raise RemoteError(

@@ -67,7 +67,7 @@ from ionwell.errors import ConfigError, EngineOutputError, IonwellError
 from ionwell.science.grid import Grid
 from ionwell.store.campaign import atomic_write_json
 
-__all__ = ["CommandEngine", "needs_box", "program_frame", "structure_block"]
+__all__ = ["CommandEngine", "needs_box", "program_frame", "restart_in_place", "structure_block"]
 
 log = logging.getLogger("ionwell.engines.command")
 
@@ -149,6 +149,15 @@ def _atom_count(engine_dir: Path) -> int | None:
             return int(fh.readline().split()[0])
     except (OSError, ValueError, IndexError):
         return None
+
+
+def restart_in_place(workdir: Path) -> bool:
+    """Whether the attempt prepared in ``workdir`` had restart files in place (``command.json``
+    written by :meth:`CommandEngine.prepare`; False for another engine's folder)."""
+    try:
+        return json.loads((Path(workdir) / STATE).read_text()).get("restart") is not None
+    except (OSError, ValueError):
+        return False
 
 
 class CommandEngine:
@@ -397,10 +406,9 @@ class CommandEngine:
             except EngineRunError as err:
                 failed = self.cfg.converged.scf_failed
                 if i == 0 and failed is not None and self._says(workdir, failed):
-                    state = json.loads((workdir / STATE).read_text())
                     raise ScfNotConverged(
                         f"step {step}: {argv[0]} stopped: its SCF did not converge ({err})",
-                        warm=state.get("restart") is not None,
+                        warm=restart_in_place(workdir),
                     ) from None
                 raise
         state = json.loads((workdir / STATE).read_text())
