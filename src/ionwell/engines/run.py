@@ -163,7 +163,7 @@ def run_engine(
             # program's own guess, and no previous-step restart for the remedies after it
             ctx = context.model_copy(update={"cold": True, "previous": None})
             attempts.insert(1, ("a fresh guess (the restart files did not converge)", variant))
-        else:
+        elif ctx.cold:  # the remedies continue from the fresh attempt's own restart files
             ctx = ctx.model_copy(update={"cold": False})
         k += 1
     if last_error is not None:  # the last try stopped on its SCF: no result to record
