@@ -3,7 +3,7 @@
     python bench/warm_start.py [--layers 2] [--shells 1] [--steps 4] [--modes neutral,cation]
                                [--xc lda,vwn] [--xc pbe] [--basis sto-3g] [--basis 6-31g]
                                [--relax-steps 1,2] [--geometries 4] [--smearing 0] [--newton J,full]
-                               [--root DIR]
+                               [--from-step 1] [--root DIR]
 
 One campaign of ``--steps`` neutral Li insertions into a flake (default: a benzene bilayer, 24
 atoms; the issue's coronene bilayer is ``--shells 2``, ~700 s per single point on two cores)
@@ -235,6 +235,13 @@ def main() -> None:
         default="",
         help="also one Newton step with these kernels (J, full; comma-separated; closed shells)",
     )
+    ap.add_argument(
+        "--from-step",
+        type=int,
+        default=1,
+        help="first step with a warm-vs-cold row (earlier steps are skipped, step K-1 is solved "
+        "cold as the warm source; to add steps to a series measured before)",
+    )
     ap.add_argument("--threads", type=int, default=2)
     ap.add_argument("--root", type=Path, default=None, help="keep (and reuse) campaigns here")
     args = ap.parse_args()
@@ -266,6 +273,8 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
     chk_prev = None
     dm_prev = None
     for n, atoms in enumerate(structures):
+        if n < args.from_step - 1:
+            continue
         charge = 0 if mode == "neutral" else n
         mol = build_mol(atoms, cfg.basis, charge)
         ks = _solve(mol, cfg, None)

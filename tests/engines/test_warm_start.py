@@ -114,3 +114,83 @@ def test_ledger_records_the_guess_per_step(tmp_path):
     run_campaign(cfg, tmp_path)
     recs = read_ledger(CampaignPaths(tmp_path / "campaigns" / "tiny").ledger)
     assert [r.guess for r in recs] == [COLD_GUESS, "previous step (orbitals)"]
+
+
+# Li and Na⁺ 8 Å apart, LDA/6-31G, one valence electron (UKS doublet). LDA spreads that
+# electron over both ions (Mulliken ≈ 0.5 each: the delocalisation error of local functionals,
+# common practice); a guess with the electron on Li alone, held there by maximum overlap,
+# converges to a localised state with the filled Li 2s level above the empty Na 3s one. Both
+# are SCF solutions; the measurements below are this test's own (PySCF 2.x, 2026-12).
+PAIR = PyscfEngineConfig(xc="lda,vwn", basis="6-31g", conv_tol=1e-10, density_fit=False)
+PAIR_ATOMS = Atoms("LiNa", [(0.0, 0.0, 0.0), (0.0, 0.0, 8.0)])
+
+
+def _atomic_guess(mol, neutral: str) -> np.ndarray:
+    """UKS density of the pair built from free-atom solutions (PySCF, LDA): ``neutral`` carries
+    the valence electron, the other atom is a bare cation."""
+    from pyscf import dft, gto
+
+    blocks = []
+    for sym, pos in zip(PAIR_ATOMS.get_chemical_symbols(), PAIR_ATOMS.positions, strict=True):
+        charge = 0 if sym == neutral else 1
+        m = gto.M(atom=[[sym, tuple(pos)]], basis=PAIR.basis, charge=charge,
+                  spin=(gto.charge(sym) - charge) % 2, unit="Angstrom", verbose=0)  # fmt: skip
+        a = dft.UKS(m)
+        a.xc = PAIR.xc
+        a.kernel()
+        blocks.append(a.make_rdm1())
+    dm = np.zeros((2, mol.nao, mol.nao))
+    n = blocks[0].shape[-1]
+    dm[:, :n, :n], dm[:, n:, n:] = blocks
+    return dm
+
+
+def test_a_warm_state_above_the_fresh_guess_is_replaced_by_the_fresh_one():
+    """A warm start that ends with an empty level below a filled one is solved again from the
+    fresh guess, and the lower state is kept and recorded as a cold start."""
+    from pyscf import dft, scf
+
+    mol = build_mol(PAIR_ATOMS, PAIR.basis, charge=1)
+    dm0 = _atomic_guess(mol, "Li")
+    ks = _KohnSham(mol, PAIR)
+    ks.dm, ks.guess = dm0, "previous step (orbitals)"
+    ks.scf()
+    cold = _KohnSham(mol, PAIR)
+    cold.scf()
+    assert ks.mf.converged and cold.mf.converged
+    # the state kept is the fresh guess's
+    assert (ks.mf.e_tot - cold.mf.e_tot) * Hartree == pytest.approx(0.0, abs=1e-6)
+    assert ks.guess.startswith(f"{COLD_GUESS}, the warm start's state was ")
+    assert ks.iterations > cold.iterations  # both SCFs counted
+    # the state it replaced, reached by PySCF directly (UKS, maximum overlap with the aufbau
+    # orbitals of the guess's Fock matrix): converged, a hole of over 1 eV, and higher
+    mf = dft.UKS(mol)
+    mf.xc, mf.conv_tol, mf.verbose = PAIR.xc, PAIR.conv_tol, 0
+    e0, c0 = mf.eig(mf.get_fock(dm=dm0), mf.get_ovlp())
+    mf = scf.addons.mom_occ(mf, c0, mf.get_occ(e0, c0))
+    mf.kernel(dm0=dm0)
+    assert mf.converged
+    occupied = mf.mo_energy[0][mf.mo_occ[0] > 0].max()
+    empty = mf.mo_energy[0][mf.mo_occ[0] == 0].min()
+    assert (occupied - empty) * Hartree > 1.0
+    higher = (mf.e_tot - cold.mf.e_tot) * Hartree
+    assert higher > 0.3
+    assert f"was {higher:.3f} eV higher" in ks.guess
+
+
+def test_a_warm_start_that_needed_newton_is_kept_when_the_fresh_guess_is_no_lower():
+    """The same pair from PySCF's own atomic guess stalls in DIIS and needs the Newton solver;
+    offered as a warm start, that guess is checked against the fresh guess, which reaches the
+    same state, and the warm state is kept with the check recorded."""
+    mol = build_mol(PAIR_ATOMS, PAIR.basis, charge=1)
+    cold = _KohnSham(mol, PAIR)
+    cold.scf()
+    assert cold.solver.endswith("newton")
+    ks = _KohnSham(mol, PAIR)
+    ks.dm = ks._new_mf(mol).get_init_guess(mol, "minao")
+    ks.guess = "previous step (orbitals)"
+    ks.scf()
+    assert ks.mf.converged and ks.solver.endswith("newton")
+    assert ks.guess.startswith("previous step (orbitals), checked against the fresh guess (")
+    assert (ks.mf.e_tot - cold.mf.e_tot) * Hartree == pytest.approx(0.0, abs=1e-6)
+    assert ks.iterations == 2 * cold.iterations  # the warm SCF and the check
