@@ -2,10 +2,26 @@
 
 from __future__ import annotations
 
+import os
 from collections.abc import Iterator
 
-import pytest
-from services import ClusterUnavailable, SlurmCluster, Sshd, cluster_skip_reason, sshd_skip_reason
+# Under pytest-xdist each worker gets its share of the cores as OpenMP threads (PySCF, tblite
+# and the subprocesses they start), unless OMP_NUM_THREADS is set already: two workers with two
+# threads each on two cores oversubscribe them, and OpenMP barriers then wait for time slices
+# (measured with CP2K: a two-step campaign 627 s with 2 threads beside a busy core, 141 s with 1).
+# Set before numpy, PySCF or libgomp are loaded, which read it once.
+if os.environ.get("PYTEST_XDIST_WORKER_COUNT") and "OMP_NUM_THREADS" not in os.environ:
+    _workers = int(os.environ["PYTEST_XDIST_WORKER_COUNT"])
+    os.environ["OMP_NUM_THREADS"] = str(max(1, len(os.sched_getaffinity(0)) // _workers))
+
+import pytest  # noqa: E402  (after the thread count is set)
+from services import (  # noqa: E402
+    ClusterUnavailable,
+    SlurmCluster,
+    Sshd,
+    cluster_skip_reason,
+    sshd_skip_reason,
+)
 
 
 @pytest.fixture(scope="session")

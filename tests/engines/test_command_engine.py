@@ -115,6 +115,20 @@ def test_run_program_env_scratch_and_errors(tmp_path):
         run_program(slow, work, LauncherConfig(), stdout=None, timeout=1.0)
 
 
+def test_configured_threads_win_over_an_inherited_omp_num_threads(tmp_path, monkeypatch):
+    """``launcher.threads`` reaches the program as OMP_NUM_THREADS even when the shell exported
+    another value (cluster login scripts often export 1); ``launcher.env`` sets it outright."""
+    work = tmp_path / "engine"
+    work.mkdir()
+    code = "import os, pathlib; pathlib.Path('omp.txt').write_text(os.environ['OMP_NUM_THREADS'])"
+    monkeypatch.setenv("OMP_NUM_THREADS", "1")
+    run_program([sys.executable, "-c", code], work, LauncherConfig(threads=3), stdout=None)
+    assert (work / "omp.txt").read_text() == "3"
+    cfg = LauncherConfig(threads=3, env={"OMP_NUM_THREADS": "5"})
+    run_program([sys.executable, "-c", code], work, cfg, stdout=None)
+    assert (work / "omp.txt").read_text() == "5"
+
+
 # ---------------------------------------------------------------------------------------------
 # the engine on one real run (fast: water, STO-3G)
 

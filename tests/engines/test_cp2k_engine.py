@@ -272,7 +272,7 @@ CAMPAIGN = {
     "host": {"builder": {"kind": "flake", "layers": 1, "shells": 1}},
     "guest": {"element": "Li", "charge_mode": "neutral"},
     "engine": {"kind": "command", "definition": "cp2k"},
-    "launcher": {"threads": 2},
+    "launcher": {"threads": 1},
     "placement": {"within": 3.0},
     "relax": {"enabled": False},
     "stop": {"guests": 1, "max_steps": 2},

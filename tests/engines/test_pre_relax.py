@@ -28,7 +28,7 @@ def _campaign(tmp_path, name: str, pre: dict | None) -> dict:
         "seed": 3,
         "host": {"builder": {"layers": 1, "shells": 1}},  # benzene in the plane z = 0
         "guest": {"element": "Li", "charge_mode": "cation"},
-        "engine": {"kind": "pyscf", "threads": 2},
+        "engine": {"kind": "pyscf"},
         "placement": {"within": 3.0},
         "relax": relax,
         "stop": {"guests": 1},

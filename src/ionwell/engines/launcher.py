@@ -194,8 +194,10 @@ def run_program(
     where = f"step {step}: " if step is not None else ""
     full = command_line(argv, cfg, values or {})
     env = dict(os.environ)
+    # the configured thread count wins over one inherited from the shell (login scripts on
+    # clusters often export OMP_NUM_THREADS=1); launcher.env can still set it explicitly
+    env["OMP_NUM_THREADS"] = str(cfg.threads)
     env.update({k: str(v) for k, v in cfg.env.items()})
-    env.setdefault("OMP_NUM_THREADS", str(cfg.threads))
     rundir = workdir
     if cfg.scratch:
         base = Path(os.path.expandvars(cfg.scratch)).expanduser()
