@@ -8,7 +8,8 @@ from collections.abc import Iterator
 # Under pytest-xdist each worker gets its share of the cores as OpenMP threads (PySCF, tblite
 # and the subprocesses they start), unless OMP_NUM_THREADS is set already: two workers with two
 # threads each on two cores oversubscribe them, and OpenMP barriers then wait for time slices
-# (measured with CP2K: a two-step campaign 627 s with 2 threads beside a busy core, 141 s with 1).
+# (measured with CP2K beside a benchmark on both cores: a two-step campaign 627 s with 2 threads,
+# 141 s with 1).
 # Set before numpy, PySCF or libgomp are loaded, which read it once.
 if os.environ.get("PYTEST_XDIST_WORKER_COUNT") and "OMP_NUM_THREADS" not in os.environ:
     _workers = int(os.environ["PYTEST_XDIST_WORKER_COUNT"])
