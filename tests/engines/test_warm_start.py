@@ -145,18 +145,26 @@ def _atomic_guess(mol, neutral: str) -> np.ndarray:
     return dm
 
 
-def test_a_warm_state_above_the_fresh_guess_is_replaced_by_the_fresh_one():
+@pytest.fixture(scope="module")
+def pair_cold() -> _KohnSham:
+    """The pair solved from PySCF's fresh guess through the engine's driver (shared by both
+    tests below: the reference state)."""
+    cold = _KohnSham(build_mol(PAIR_ATOMS, PAIR.basis, charge=1), PAIR)
+    cold.scf()
+    return cold
+
+
+def test_a_warm_state_above_the_fresh_guess_is_replaced_by_the_fresh_one(pair_cold):
     """A warm start that ends with an empty level below a filled one is solved again from the
     fresh guess, and the lower state is kept and recorded as a cold start."""
     from pyscf import dft, scf
 
+    cold = pair_cold
     mol = build_mol(PAIR_ATOMS, PAIR.basis, charge=1)
     dm0 = _atomic_guess(mol, "Li")
     ks = _KohnSham(mol, PAIR)
     ks.dm, ks.guess = dm0, "previous step (orbitals)"
     ks.scf()
-    cold = _KohnSham(mol, PAIR)
-    cold.scf()
     assert ks.mf.converged and cold.mf.converged
     # the state kept is the fresh guess's
     assert (ks.mf.e_tot - cold.mf.e_tot) * Hartree == pytest.approx(0.0, abs=1e-6)
@@ -178,13 +186,12 @@ def test_a_warm_state_above_the_fresh_guess_is_replaced_by_the_fresh_one():
     assert f"was {higher:.3f} eV higher" in ks.guess
 
 
-def test_a_warm_start_that_needed_newton_is_kept_when_the_fresh_guess_is_no_lower():
+def test_a_warm_start_that_needed_newton_is_kept_when_the_fresh_guess_is_no_lower(pair_cold):
     """The same pair from PySCF's own atomic guess stalls in DIIS and needs the Newton solver;
     offered as a warm start, that guess is checked against the fresh guess, which reaches the
     same state, and the warm state is kept with the check recorded."""
+    cold = pair_cold
     mol = build_mol(PAIR_ATOMS, PAIR.basis, charge=1)
-    cold = _KohnSham(mol, PAIR)
-    cold.scf()
     assert cold.solver.endswith("newton")
     ks = _KohnSham(mol, PAIR)
     ks.dm = ks._new_mf(mol).get_init_guess(mol, "minao")

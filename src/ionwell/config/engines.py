@@ -216,8 +216,9 @@ class PyscfEngineConfig(_Model):
     # an insertion (median warm/cold 1.1 for Li⁺, 0.9-1.1 for smeared Li): it is 3-5x closer to
     # the converged density, and even one Newton step on top of it (5-10x closer again) leaves
     # 7-9 DIIS cycles, since cycles follow the logarithm of the guess's error. Geometry to
-    # geometry within a relaxation (always on) it needs 0.24-0.52 of the cold iterations. When
-    # DIIS stalls, a warm SCF is checked against a fresh one
+    # geometry within a relaxation (always on) it needs 0.24-0.52 of the cold iterations. A warm
+    # SCF that needed the Newton solver or left an empty level below a filled one is checked
+    # against a fresh one
     warm_start: bool = Field(
         False,
         description="start the SCF from the previous step's orbitals plus the new guests' atomic "
