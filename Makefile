@@ -17,7 +17,7 @@ demo: $(STAMP)
 	$(BIN)/ionwell run $(DEMO)
 
 test: $(STAMP)
-	$(BIN)/python -m pytest -v --durations=15 -n 2 --dist loadfile
+	$(BIN)/python -m pytest -v --durations=15 -n 2 --dist loadfile --no-loadscope-reorder
 
 test-fast: $(STAMP)
 	$(BIN)/python -m pytest -m "not slow and not cluster"
