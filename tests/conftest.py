@@ -67,8 +67,8 @@ def sshd_server(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Sshd]:
 # end (longest-processing-time-first). xdist's own order, by the number of tests in a file,
 # left the one-test DFT campaigns for last: one worker ran them for ~5 min while the other sat
 # idle (measured on 2 cores: 29.3 min; in this order 27.8 min, 12 s above half the summed
-# test time of 3,308 s). The estimate comes from the markers, so
-# a new slow test moves its file up without a table to keep.
+# test time of 3,308 s). The estimate comes from the markers, so a new slow test moves its file
+# up without a table to keep.
 _COST = {"cluster": 120.0, "slow": 60.0}
 
 
