@@ -70,61 +70,76 @@ def _records(root: Path, name: str):
     return read_ledger(CampaignPaths(root / "campaigns" / name).ledger)
 
 
-@pytest.mark.slow
-def test_campaign_through_the_slurm_profile(slurm_cluster, tmp_path):
-    cfg = _config(tmp_path, "onslurm")
-    proc = _run(cfg, tmp_path, "--profile", "slurm")
-    assert proc.returncode == 0, proc.stdout[-2000:] + proc.stderr[-3000:]
-    recs = _records(tmp_path, "onslurm")
-    assert [r.guests for r in recs] == [0, 1, 2]
-    # every compute step ran as its own SLURM job
-    ids = [r.job_id for r in recs]
-    assert all(ids) and len(set(ids)) == 3, ids
-    done = {j["JobId"]: j for j in slurm_cluster.submissions("")}
-    for job in ids:
-        assert job in done and done[job]["JobState"] == "COMPLETED", (job, done.get(job))
-    st = subprocess.run(
-        [*IONWELL, "status", str(tmp_path / "campaigns" / "onslurm")],
-        capture_output=True,
-        text=True,
-    )
-    assert all(j in st.stdout for j in ids)
+WALLTIME_TEST = "test_walltime_kill_is_retried_with_more_time_and_restarts"
 
 
-@pytest.mark.slow
-def test_campaign_through_the_pbs_profile(slurm_cluster, tmp_path):
-    cfg = _config(tmp_path, "onpbs")
-    proc = _run(cfg, tmp_path, "--profile", "pbs")
-    assert proc.returncode == 0, proc.stdout[-2000:] + proc.stderr[-3000:]
-    recs = _records(tmp_path, "onpbs")
-    assert [r.guests for r in recs] == [0, 1, 2]
-    names = [j.get("Name", j.get("JobName", "")) for j in slurm_cluster.submissions("iw-compute")]
-    assert len(names) >= 3  # one qsub job per compute step
-
-
-@pytest.mark.slow
-def test_walltime_kill_is_retried_with_more_time_and_restarts(slurm_cluster, tmp_path):
-    """Step 1's program needs about 100 s (10 s per SCF iteration); the first attempt has a
-    one-minute limit and is killed; the retry gets two minutes and continues from the
-    checkpoint of the killed attempt."""
+@pytest.fixture(scope="module", autouse=True)
+def walltime_campaign(request, tmp_path_factory):
+    """The campaign of the walltime test (the last test here), started before the first test of
+    this file: for most of its ~3 min the program sleeps or SLURM is about to enforce a limit,
+    so it runs beside the other tests (the test cluster has 2 CPUs, each job asks for one) and
+    its test only waits for the end. Started only when that test is selected and SLURM runs.
+    Yields (process, root, log file) or None."""
+    if not any(item.name == WALLTIME_TEST for item in request.session.items):
+        yield None
+        return
+    try:
+        request.getfixturevalue("slurm_cluster")
+    except pytest.skip.Exception:
+        yield None
+        return
+    root = tmp_path_factory.mktemp("walltime")
+    # step 1's program needs about 100 s (10 s per SCF iteration); the first attempt has a
+    # one-minute limit and is killed; the retry gets two minutes
     cfg = _config(
-        tmp_path,
+        root,
         "walltime",
         engine=COMMAND,
         stop={"guests": 1},
         resources={"compute": {"threads": 1, "memory": 1000, "walltime": 1, "walltime_factor": 2}},
         launcher={"env": {"RUNNER_DELAY": "10", "RUNNER_DELAY_STEP": "1"}},
     )
-    proc = _run(cfg, tmp_path, "--profile", "slurm", "--retries", "3")
+    out = root / "run.log"
+    with out.open("w") as sink:
+        proc = subprocess.Popen(
+            [
+                *IONWELL,
+                "run",
+                str(cfg),
+                "--root",
+                str(root),
+                "--profile",
+                "slurm",
+                "--retries",
+                "3",
+            ],
+            stdout=sink,
+            stderr=subprocess.STDOUT,
+            cwd=root,
+            start_new_session=True,
+        )
+    try:
+        yield proc, root, out
+    finally:
+        if proc.poll() is None:  # the test did not wait for it (failed or interrupted)
+            os.killpg(proc.pid, signal.SIGKILL)
+            proc.wait()
+
+
+@pytest.mark.slow
+def test_campaign_through_the_pbs_profile(slurm_cluster, tmp_path):
+    """The embedded engine (PySCF) through the pbs profile (qsub/qstat, here the PBS wrappers
+    over the test SLURM): each compute step its own job, its id recorded in the ledger."""
+    cfg = _config(tmp_path, "onpbs", stop={"guests": 1})
+    proc = _run(cfg, tmp_path, "--profile", "pbs")
     assert proc.returncode == 0, proc.stdout[-2000:] + proc.stderr[-3000:]
-    recs = _records(tmp_path, "walltime")
-    assert [r.guests for r in recs] == [0, 1] and recs[1].scf_converged
-    log = (
-        tmp_path / "campaigns" / "walltime" / "steps" / "0001" / "engine" / "job.log"
-    ).read_text()
-    assert "restart: initial guess from runner.chk" in log
-    states = [j["JobState"] for j in slurm_cluster.submissions("")]
-    assert "TIMEOUT" in states
+    recs = _records(tmp_path, "onpbs")
+    assert [r.guests for r in recs] == [0, 1]
+    ids = [r.job_id for r in recs]
+    assert all(ids) and len(set(ids)) == 2, ids
+    done = {j["JobId"]: j for j in slurm_cluster.submissions("iw-compute")}
+    for job in ids:  # one qsub job per compute step, each finished
+        assert job in done and done[job]["JobState"] == "COMPLETED", (job, done.get(job))
 
 
 @pytest.mark.slow
@@ -376,7 +391,7 @@ def test_qsub_prints_bare_id_and_qstat_sees_running_job(
     assert jobs[0]["TimeLimit"] == "1"  # walltime=00:01:00 reached SLURM
 
 
-# the time-limit kill is exercised by test_cluster_campaigns (a step job reaching TIMEOUT)
+# the time-limit kill is exercised by the walltime test below (a step job reaching TIMEOUT)
 
 
 def test_paramiko_reaches_sshd_with_key_and_known_hosts(sshd_server: Sshd, tmp_path: Path):
@@ -421,3 +436,32 @@ def test_host_keys_are_checked_and_a_dropped_connection_reopens(sshd_server, tmp
     changed.write_text(f"[{sshd_server.host}]:{sshd_server.port} {kind} {key}\n")
     with pytest.raises(RemoteError, match="host key differs"):
         RemoteSession(cfg.model_copy(update={"known_hosts": str(changed)}), step=4).connect()
+
+
+@pytest.mark.slow
+def test_walltime_kill_is_retried_with_more_time_and_restarts(slurm_cluster, walltime_campaign):
+    """A campaign through the slurm profile (started by the fixture when this file started):
+    every compute step its own SLURM job. Step 1's program needs about 100 s; the first attempt
+    has a one-minute limit and is killed; the retry gets two minutes and continues from the
+    checkpoint of the killed attempt."""
+    proc, root, out = walltime_campaign
+    code = proc.wait(timeout=1200)
+    assert code == 0, out.read_text()[-4000:]
+    recs = _records(root, "walltime")
+    assert [r.guests for r in recs] == [0, 1] and recs[1].scf_converged
+    log = (root / "campaigns" / "walltime" / "steps" / "0001" / "engine" / "job.log").read_text()
+    assert "restart: initial guess from runner.chk" in log
+    jobs = slurm_cluster.submissions("")
+    assert "TIMEOUT" in [j["JobState"] for j in jobs]
+    # each step recorded the SLURM job that computed it (step 1: the retry), each completed
+    ids = [r.job_id for r in recs]
+    assert all(ids) and len(set(ids)) == 2, ids
+    done = {j["JobId"]: j for j in jobs}
+    for job in ids:
+        assert job in done and done[job]["JobState"] == "COMPLETED", (job, done.get(job))
+    st = subprocess.run(
+        [*IONWELL, "status", str(root / "campaigns" / "walltime")],
+        capture_output=True,
+        text=True,
+    )
+    assert all(j in st.stdout for j in ids), st.stdout

@@ -269,7 +269,7 @@ def _run(tmp: Path, name: str, engine: dict, env: dict | None = None, timeout=90
         "engine": engine,
         "placement": {"within": 3.0},
         "relax": {"enabled": False},
-        "stop": {"guests": 2},
+        "stop": {"guests": 1},  # the host, then one Li⁺
     }
     if env:
         data["launcher"] = {"env": env}
@@ -304,10 +304,9 @@ def test_command_engine_campaign_matches_the_embedded_engine(tmp_path):
         assert proc.returncode == 0, err[-3000:]
         runs[name] = read_ledger(CampaignPaths(tmp_path / "campaigns" / name).ledger)
     a, b = runs["via-command"], runs["in-process"]
-    assert [r.guests for r in a] == [r.guests for r in b] == [0, 1, 2]
-    for ra, rb in zip(a[:2], b[:2], strict=True):
-        pa, pb = ra.decision.chosen[0].position, rb.decision.chosen[0].position
-        assert np.linalg.norm(np.subtract(pa, pb)) < 0.05, (ra.step, pa, pb)
+    assert [r.guests for r in a] == [r.guests for r in b] == [0, 1]
+    pa, pb = a[0].decision.chosen[0].position, b[0].decision.chosen[0].position
+    assert np.linalg.norm(np.subtract(pa, pb)) < 0.05, (pa, pb)
     # same physics, same numbers: energies from the two routes agree (PySCF both ways)
     np.testing.assert_allclose([r.energy for r in a], [r.energy for r in b], atol=1e-4)
     assert a[0].engine == "pyscf-runner" and b[0].engine == "pyscf"
@@ -360,7 +359,7 @@ def test_killed_program_is_retried_and_restarts_from_its_checkpoint(tmp_path):
     assert killed, "the program was never seen running"
     assert proc.returncode == 0, err[-3000:]
     recs = read_ledger(CampaignPaths(tmp_path / "campaigns" / "killed").ledger)
-    assert [r.guests for r in recs] == [0, 1, 2] and all(r.scf_converged for r in recs)
+    assert [r.guests for r in recs] == [0, 1] and all(r.scf_converged for r in recs)
     # the retried attempt found the killed attempt's checkpoint and the program used it
     assert "restart: initial guess from runner.chk" in (work / "job.log").read_text()
     assert json.loads((work / "command.json").read_text())["restart"] == "earlier attempt"
