@@ -90,13 +90,25 @@ def walltime_campaign(request, tmp_path_factory):
         return
     root = tmp_path_factory.mktemp("walltime")
     # step 1's program needs about 100 s (10 s per SCF iteration); the first attempt has a
-    # one-minute limit and is killed; the retry gets two minutes
+    # one-minute limit and is killed; the retry gets two minutes. No warning signal
+    # (stop_before 0): this is the hard kill. With the default, 30 s before a one-minute
+    # limit, SLURM (which may send it up to 60 s early, sbatch(1) on --signal) once sent it
+    # 2.5 s into the job step, before Snakemake had parsed the workflow and armed the handler,
+    # so the attempt died of SIGUSR1 instead of reaching its limit (fresh-clone CI).
     cfg = _config(
         root,
         "walltime",
         engine=COMMAND,
         stop={"guests": 1},
-        resources={"compute": {"threads": 1, "memory": 1000, "walltime": 1, "walltime_factor": 2}},
+        resources={
+            "compute": {
+                "threads": 1,
+                "memory": 1000,
+                "walltime": 1,
+                "walltime_factor": 2,
+                "stop_before": 0,
+            }
+        },
         launcher={"env": {"RUNNER_DELAY": "10", "RUNNER_DELAY_STEP": "1"}},
     )
     out = root / "run.log"

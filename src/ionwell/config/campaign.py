@@ -439,7 +439,9 @@ class ComputeResources(_Model):
         description="seconds before the time limit at which a SLURM compute job is sent SIGUSR1 "
         "(--signal=USR1@N), so an external program with a soft stop stops cleanly with its "
         "restart files and the retry continues from them; at most half the first attempt's "
-        "limit is used; 0: no warning",
+        "limit is used; 0: no warning. SLURM may send it up to 60 s early: with a first "
+        "attempt of about 2 min or less it can arrive while the job is still starting, end that "
+        "attempt, and the retry follows",
     )
     partition: str | None = Field(None, description="partition (SLURM) or queue (PBS)")
     account: str | None = Field(None, description="account to charge")

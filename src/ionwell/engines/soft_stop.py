@@ -35,6 +35,12 @@ SIGUSR1 handler dies of it (QE stops cleanly on it only when built with
 ``-D__TERMINATE_GRACEFULLY``); there, set ``stop_before: 0`` or start the program with
 ``mpirun`` (``launcher.kind: mpi``).
 
+SLURM may send the signal up to 60 seconds before the time asked for (sbatch(1), ``--signal``):
+with a first attempt of about two minutes or less it can arrive while the job step is still
+starting, before :func:`arm` has run, and then ends the attempt (measured on the test cluster:
+2.5 s into the step, 30 s asked before a one-minute limit). Nothing is recorded by such an
+attempt; the retry, with ``walltime_factor`` more time, follows.
+
 PBS has no such option in ``qsub`` (a PBS server sends SIGTERM at the limit and SIGKILL
 ``kill_delay`` seconds later), and there Snakemake's job script runs the body in the batch shell,
 which would die of SIGUSR1: the graceful stop is SLURM-only. Remote mode's job script does not
