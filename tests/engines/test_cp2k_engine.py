@@ -107,12 +107,16 @@ def _direct_h2(folder: Path) -> tuple[float, str, float]:
     return float(ENERGY.findall(output)[-1]) * Hartree, output, seconds
 
 
-def _all_electron_pbe_h2() -> float:
-    """PBE/cc-pVTZ total energy of H2 at 0.74 Å with all electrons, from PySCF (eV)."""
+H2 = "H 0 0 0; H 0 0 0.74"
+
+
+def _all_electron_pbe(atom: str = H2, basis: str = "cc-pvtz", spin: int = 0) -> float:
+    """PBE total energy with all electrons, from PySCF (eV): by default H2 at 0.74 Å in
+    cc-pVTZ; ``spin`` (2S) > 0 runs unrestricted."""
     from pyscf import dft, gto
 
-    mol = gto.M(atom="H 0 0 0; H 0 0 0.74", basis="cc-pvtz", verbose=0)
-    mf = dft.RKS(mol)
+    mol = gto.M(atom=atom, basis=basis, spin=spin, verbose=0)
+    mf = dft.UKS(mol) if spin else dft.RKS(mol)
     mf.xc, mf.grids.level, mf.conv_tol = "pbe", 4, 1e-10
     return float(mf.kernel()) * Hartree
 
@@ -135,7 +139,7 @@ def test_engines_check_h2_agrees_with_cp2k_run_directly(h2_check):
     # pseudopotential and the DZVP-MOLOPT basis stay within ~0.02 eV of it (measured: CP2K
     # -31.7248 eV at the definition's 200 Ry, -31.7274 eV at 400 and 600 Ry). A unit slip
     # (hartree read as eV, or as rydberg) would be off by tens of eV.
-    assert abs(report.energy - _all_electron_pbe_h2()) < 0.1
+    assert abs(report.energy - _all_electron_pbe()) < 0.1
     assert -31.9 < report.energy < -31.55
 
     # the version as CP2K printed it (" CP2K| version string:  CP2K version 2023.1")
@@ -202,7 +206,6 @@ def test_an_odd_electron_count_runs_as_a_spin_polarised_doublet(h2_check, tmp_pa
     memory of published PBE atomisation energies); measured here: CP2K 4.58 eV at the
     definition's 200 Ry, PySCF aug-cc-pVQZ 4.54 eV. One atom: ~16 s on one idle core."""
     from ase import Atoms
-    from pyscf import dft, gto
 
     from ionwell.engines.base import ComputeContext
     from ionwell.engines.check import check_campaign
@@ -220,14 +223,9 @@ def test_an_odd_electron_count_runs_as_a_spin_polarised_doublet(h2_check, tmp_pa
     assert re.search(r"DFT\| Multiplicity\s+2\s*$", out, re.MULTILINE)
     assert done.result.scf_converged and done.result.spin == 1
 
-    def pbe(atom: str, spin: int) -> float:
-        mol = gto.M(atom=atom, basis="aug-cc-pvqz", spin=spin, verbose=0)
-        mf = dft.UKS(mol) if spin else dft.RKS(mol)
-        mf.xc, mf.grids.level, mf.conv_tol = "pbe", 4, 1e-10
-        return float(mf.kernel()) * Hartree
-
     d_cp2k = 2 * done.result.energy - report.energy
-    d_pyscf = 2 * pbe("H 0 0 0", 1) - pbe("H 0 0 0; H 0 0 0.74", 0)
+    qz = "aug-cc-pvqz"
+    d_pyscf = 2 * _all_electron_pbe("H 0 0 0", qz, spin=1) - _all_electron_pbe(H2, qz)
     log.info("D_e(H2): CP2K %.3f eV, PySCF all-electron %.3f eV", d_cp2k, d_pyscf)
     assert d_pyscf == pytest.approx(4.54, abs=0.05)
     assert d_cp2k == pytest.approx(d_pyscf, abs=0.1)
