@@ -3,7 +3,7 @@
     python bench/warm_start.py [--layers 2] [--shells 1] [--steps 4] [--modes neutral,cation]
                                [--xc lda,vwn] [--xc pbe] [--basis sto-3g] [--basis 6-31g]
                                [--relax-steps 1,2] [--geometries 4] [--smearing 0] [--newton J,full]
-                               [--from-step 1] [--root DIR]
+                               [--from-step 1] [--early shift:0.3:4,damp:0.5:3] [--root DIR]
 
 One campaign of ``--steps`` neutral Li insertions into a flake (default: a benzene bilayer, 24
 atoms; the issue's coronene bilayer is ``--shells 2``, ~700 s per single point on two cores)
@@ -33,6 +33,11 @@ preconditioned conjugate gradients, with the Hartree kernel only (``+newton(J)``
 J builds) and with PySCF's full linear-response kernel (``+newton(full)``, ``gen_response``).
 It asks whether a better guess from the previous step could reach the target at all: the
 exact linear response of the host to the new ion is what no construction holds.
+
+``--early KIND:VALUE:CYCLES,...`` also solves each warm guess with a level shift (``shift``,
+hartree, added to the empty levels) or Fock damping (``damp``, the fraction of the previous
+cycle's Fock matrix kept; DIIS starts after it) during its first CYCLES cycles only: does
+holding the new ion's first, far-off Fock matrices back let DIIS start from a better point?
 
 Prints one JSON line per SCF comparison and, per functional, basis and mode, the median
 ratios warm/cold. ``--root`` keeps the campaign there and reuses it. Run by hand; not a test.
@@ -110,6 +115,41 @@ def _solve(mol, cfg: PyscfEngineConfig, guess, label: str | None = None) -> _Koh
     if not ks.scf().converged:
         print(json.dumps({"warning": "SCF not converged"}), flush=True)
     return ks
+
+
+class _EarlyKohnSham(_KohnSham):
+    """The engine's SCF driver with a level shift (``shift``, hartree) or Fock damping
+    (``damp``, fraction kept) during the first ``cycles`` cycles of each DIIS run only."""
+
+    def __init__(self, mol, cfg: PyscfEngineConfig, kind: str, value: float, cycles: int):
+        super().__init__(mol, cfg)
+        self.early = (kind, value, cycles)
+
+    def _diis(self, mf, dm0, stall: bool = True) -> tuple[bool, int]:
+        kind, value, cycles = self.early
+        plain = mf.get_fock
+
+        def get_fock(h1e=None, s1e=None, vhf=None, dm=None, cycle=-1, diis=None, **kwargs):
+            if 0 <= cycle < cycles:
+                if kind == "shift":
+                    kwargs["level_shift_factor"] = value
+                else:  # damping acts before DIIS starts only (PySCF's get_fock)
+                    kwargs.update(damp_factor=value, diis_start_cycle=cycles + 1)
+            return plain(h1e, s1e, vhf, dm, cycle, diis, **kwargs)
+
+        mf.get_fock = get_fock
+        return super()._diis(mf, dm0, stall)
+
+
+def _early_variants(spec: str) -> list[tuple[str, float, int]]:
+    """``shift:0.3:4,damp:0.5:3`` → [("shift", 0.3, 4), ("damp", 0.5, 3)]."""
+    out = []
+    for item in (i for i in spec.split(",") if i):
+        kind, value, cycles = item.split(":")
+        if kind not in ("shift", "damp"):
+            raise SystemExit(f"--early: {item!r}: kind must be shift or damp")
+        out.append((kind, float(value), int(cycles)))
+    return out
 
 
 def _total(dm: np.ndarray) -> np.ndarray:
@@ -242,6 +282,12 @@ def main() -> None:
         help="first step with a warm-vs-cold row (earlier steps are skipped, step K-1 is solved "
         "cold as the warm source; to add steps to a series measured before)",
     )
+    ap.add_argument(
+        "--early",
+        default="",
+        help="also each warm guess with a level shift or damping for its first cycles: "
+        "KIND:VALUE:CYCLES, comma-separated, KIND shift (hartree) or damp (fraction kept)",
+    )
     ap.add_argument("--threads", type=int, default=2)
     ap.add_argument("--root", type=Path, default=None, help="keep (and reuse) campaigns here")
     args = ap.parse_args()
@@ -302,6 +348,23 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
                 "energy_minus_cold_eV": float(f"{e_w - e_c:.2e}"),
                 "warm_guess": _diagnostics(ks, dm0),
             }), flush=True)  # fmt: skip
+            for kind, value, cycles in _early_variants(args.early):
+                key = f"{c}+{kind}({value:g}x{cycles})"
+                ks_e = _EarlyKohnSham(mol, cfg, kind, value, cycles)
+                ks_e.dm, ks_e.guess = dm0, f"{label} + {key}"
+                if not ks_e.scf().converged:
+                    print(json.dumps({"warning": "SCF not converged"}), flush=True)
+                its, secs = ks_e.iterations, ks_e.scf_seconds
+                e_e = float(ks_e.mf.e_tot) * Hartree
+                ratios.setdefault(key, []).append(its / it_c)
+                times.setdefault(key, []).append(secs / t_c)
+                worst[key] = max(worst.get(key, 0.0), abs(e_e - e_c))
+                print(json.dumps({
+                    **tag, "step": n, "construction": key, "iterations": its,
+                    "seconds": round(secs, 2), "solver": ks_e.solver,
+                    "ratio": round(its / it_c, 2), "time_ratio": round(secs / t_c, 2),
+                    "energy_minus_cold_eV": float(f"{e_e - e_c:.2e}"),
+                }), flush=True)  # fmt: skip
             for kernel in [k for k in args.newton.split(",") if k] if mol.spin == 0 else ():
                 dm1, n_cg, t_cg, gap = _newton_step(w, dm0, kernel)
                 v = _solve(mol, cfg, dm1, f"{label} + Newton step ({kernel})")
