@@ -52,6 +52,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from collections import defaultdict
 from pathlib import Path
 
 import numpy as np
@@ -106,9 +107,12 @@ def _structures(root: Path, args: argparse.Namespace) -> list:
     return [read(p) for p in inputs]
 
 
-def _solve(mol, cfg: PyscfEngineConfig, guess, label: str | None = None) -> _KohnSham:
-    """One SCF through the engine's driver from ``guess`` (None: PySCF's fresh guess)."""
-    ks = _KohnSham(mol, cfg)
+def _solve(
+    mol, cfg: PyscfEngineConfig, guess, label: str | None = None, ks: _KohnSham | None = None
+) -> _KohnSham:
+    """One SCF through the engine's driver ``ks`` (None: a plain one) from ``guess`` (None:
+    PySCF's fresh guess)."""
+    ks = ks or _KohnSham(mol, cfg)
     ks.dm = guess
     if label is not None:
         ks.guess = label
@@ -142,13 +146,16 @@ class _EarlyKohnSham(_KohnSham):
 
 
 def _early_variants(spec: str) -> list[tuple[str, float, int]]:
-    """``shift:0.3:4,damp:0.5:3`` → [("shift", 0.3, 4), ("damp", 0.5, 3)]."""
+    """``shift:0.3:4,damp:0.5:3`` → [("shift", 0.3, 4), ("damp", 0.5, 3)] (``--early``)."""
     out = []
     for item in (i for i in spec.split(",") if i):
-        kind, value, cycles = item.split(":")
+        try:
+            kind, value, cycles = item.split(":")
+            out.append((kind, float(value), int(cycles)))
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{item!r}: expected KIND:VALUE:CYCLES") from None
         if kind not in ("shift", "damp"):
-            raise SystemExit(f"--early: {item!r}: kind must be shift or damp")
-        out.append((kind, float(value), int(cycles)))
+            raise argparse.ArgumentTypeError(f"{item!r}: KIND must be shift or damp")
     return out
 
 
@@ -284,7 +291,8 @@ def main() -> None:
     )
     ap.add_argument(
         "--early",
-        default="",
+        type=_early_variants,
+        default=[],
         help="also each warm guess with a level shift or damping for its first cycles: "
         "KIND:VALUE:CYCLES, comma-separated, KIND shift (hartree) or damp (fraction kept)",
     )
@@ -312,10 +320,33 @@ def main() -> None:
 def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path) -> None:
     """Steps 0..n of one functional, basis and guest mode; prints rows and the medians."""
     tag = {"mode": mode, "xc": cfg.xc, "basis": cfg.basis, "smearing": cfg.smearing}
-    ratios: dict[str, list[float]] = {c: [] for c in constructions}
-    times: dict[str, list[float]] = {c: [] for c in constructions}
-    worst: dict[str, float] = {c: 0.0 for c in constructions}
+    # constructions first, so the summary lists them even without a warm row
+    ratios: defaultdict[str, list[float]] = defaultdict(list, {c: [] for c in constructions})
+    times: defaultdict[str, list[float]] = defaultdict(list, {c: [] for c in constructions})
+    worst: defaultdict[str, float] = defaultdict(float, {c: 0.0 for c in constructions})
     relax_ratios: list[float] = []
+
+    def record(
+        key: str,
+        step: int,
+        cold: tuple[int, float, float],
+        its: int,
+        secs: float,
+        e: float,
+        **fields,
+    ) -> None:
+        """Add one warm SCF (``its`` cycles, ``secs`` s, energy ``e`` eV) against the step's
+        ``cold`` one (cycles, s, eV) to the medians of ``key`` and print its row with ``fields``."""
+        it_c, t_c, e_c = cold
+        ratios[key].append(its / it_c)
+        times[key].append(secs / t_c)
+        worst[key] = max(worst[key], abs(e - e_c))
+        print(json.dumps({
+            **tag, "step": step, "construction": key, **fields, "iterations": its,
+            "seconds": round(secs, 2), "ratio": round(its / it_c, 2),
+            "time_ratio": round(secs / t_c, 2), "energy_minus_cold_eV": float(f"{e - e_c:.2e}"),
+        }), flush=True)  # fmt: skip
+
     chk_prev = None
     dm_prev = None
     for n, atoms in enumerate(structures):
@@ -334,55 +365,50 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
                 float(np.linalg.norm(_total(ks.dm)[:nao_prev, :nao_prev] - dm_prev)), 3
             )
         print(json.dumps(row), flush=True)
+        cold_run = (it_c, t_c, e_c)
         for c in constructions if chk_prev is not None else ():
             dm0, label = warm_start_guess(mol, chk_prev, mol.spin != 0, c)
             w = _solve(mol, cfg, dm0, label)
-            it_w, t_w, e_w = w.iterations, w.scf_seconds, float(w.mf.e_tot) * Hartree
-            ratios[c].append(it_w / it_c)
-            times[c].append(t_w / t_c)
-            worst[c] = max(worst[c], abs(e_w - e_c))
-            print(json.dumps({
-                **tag, "step": n, "construction": c, "guess": w.guess,
-                "iterations": it_w, "seconds": round(t_w, 2), "solver": w.solver,
-                "ratio": round(it_w / it_c, 2), "time_ratio": round(t_w / t_c, 2),
-                "energy_minus_cold_eV": float(f"{e_w - e_c:.2e}"),
-                "warm_guess": _diagnostics(ks, dm0),
-            }), flush=True)  # fmt: skip
-            for kind, value, cycles in _early_variants(args.early):
+            record(
+                c,
+                n,
+                cold_run,
+                w.iterations,
+                w.scf_seconds,
+                float(w.mf.e_tot) * Hartree,
+                guess=w.guess,
+                solver=w.solver,
+                warm_guess=_diagnostics(ks, dm0),
+            )
+            for kind, value, cycles in args.early:
                 key = f"{c}+{kind}({value:g}x{cycles})"
                 ks_e = _EarlyKohnSham(mol, cfg, kind, value, cycles)
-                ks_e.dm, ks_e.guess = dm0, f"{label} + {key}"
-                if not ks_e.scf().converged:
-                    print(json.dumps({"warning": "SCF not converged"}), flush=True)
-                its, secs = ks_e.iterations, ks_e.scf_seconds
-                e_e = float(ks_e.mf.e_tot) * Hartree
-                ratios.setdefault(key, []).append(its / it_c)
-                times.setdefault(key, []).append(secs / t_c)
-                worst[key] = max(worst.get(key, 0.0), abs(e_e - e_c))
-                print(json.dumps({
-                    **tag, "step": n, "construction": key, "iterations": its,
-                    "seconds": round(secs, 2), "solver": ks_e.solver,
-                    "ratio": round(its / it_c, 2), "time_ratio": round(secs / t_c, 2),
-                    "energy_minus_cold_eV": float(f"{e_e - e_c:.2e}"),
-                }), flush=True)  # fmt: skip
+                ks_e = _solve(mol, cfg, dm0, f"{label} + {key}", ks_e)
+                record(
+                    key,
+                    n,
+                    cold_run,
+                    ks_e.iterations,
+                    ks_e.scf_seconds,
+                    float(ks_e.mf.e_tot) * Hartree,
+                    solver=ks_e.solver,
+                )
             for kernel in [k for k in args.newton.split(",") if k] if mol.spin == 0 else ():
                 dm1, n_cg, t_cg, gap = _newton_step(w, dm0, kernel)
                 v = _solve(mol, cfg, dm1, f"{label} + Newton step ({kernel})")
                 # cost: the Fock build of the step plus the SCF after it
-                its = v.iterations + 1
-                key = f"{c}+newton({kernel})"
-                ratios.setdefault(key, []).append(its / it_c)
-                times.setdefault(key, []).append((v.scf_seconds + t_cg) / t_c)
-                worst[key] = max(worst.get(key, 0.0), abs(float(v.mf.e_tot) * Hartree - e_c))
-                print(json.dumps({
-                    **tag, "step": n, "construction": key, "iterations": its,
-                    "cg_iterations": n_cg, "step_seconds": round(t_cg, 2),
-                    "seconds": round(v.scf_seconds + t_cg, 2), "ratio": round(its / it_c, 2),
-                    "time_ratio": round((v.scf_seconds + t_cg) / t_c, 2),
-                    "smallest_gap_eV": round(gap * Hartree, 3),
-                    "energy_minus_cold_eV": float(f"{float(v.mf.e_tot) * Hartree - e_c:.2e}"),
-                    "guess_after_step": _diagnostics(ks, dm1),
-                }), flush=True)  # fmt: skip
+                record(
+                    f"{c}+newton({kernel})",
+                    n,
+                    cold_run,
+                    v.iterations + 1,
+                    v.scf_seconds + t_cg,
+                    float(v.mf.e_tot) * Hartree,
+                    cg_iterations=n_cg,
+                    step_seconds=round(t_cg, 2),
+                    smallest_gap_eV=round(gap * Hartree, 3),
+                    guess_after_step=_diagnostics(ks, dm1),
+                )
         if n in relax_steps and n >= 1 and args.geometries > 1:
             warm, cold = _relaxation(atoms, charge, cfg, n, args.geometries)
             relax_ratios += [w / c for w, c in zip(warm, cold, strict=True)]
