@@ -3,7 +3,8 @@
     python bench/warm_start.py [--layers 2] [--shells 1] [--steps 4] [--modes neutral,cation]
                                [--xc lda,vwn] [--xc pbe] [--basis sto-3g] [--basis 6-31g]
                                [--relax-steps 1,2] [--geometries 4] [--smearing 0] [--newton J,full]
-                               [--from-step 1] [--early shift:0.3:4,damp:0.5:3] [--root DIR]
+                               [--from-step 1] [--early shift:0.3:4,damp:0.5:3]
+                               [--coarse 1:1e-6,3:1e-5] [--root DIR]
 
 One campaign of ``--steps`` neutral Li insertions into a flake (default: a benzene bilayer, 24
 atoms; the issue's coronene bilayer is ``--shells 2``, ~700 s per single point on two cores)
@@ -38,6 +39,13 @@ exact linear response of the host to the new ion is what no construction holds.
 hartree, added to the empty levels) or Fock damping (``damp``, the fraction of the previous
 cycle's Fock matrix kept; DIIS starts after it) during its first CYCLES cycles only: does
 holding the new ion's first, far-off Fock matrices back let DIIS start from a better point?
+
+``--coarse LEVEL:TOL,...`` also solves each step in two stages, from the warm guess and from
+the fresh one: first on PySCF's integration grid LEVEL (0-9; the engine's default is 3) to
+an energy tolerance of TOL hartree, then with the engine's settings from that density. Its rows
+count the second stage's cycles as ``iterations`` (``coarse_iterations`` beside them) and both
+stages in ``seconds``. ``3:1e-5`` (the same grid, a looser tolerance) measures how many
+cycles a new SCF needs from a density that is already nearly converged.
 
 Prints one JSON line per SCF comparison and, per functional, basis and mode, the median
 ratios warm/cold. ``--root`` keeps the campaign there and reuses it. Run by hand; not a test.
@@ -157,6 +165,27 @@ def _early_variants(spec: str) -> list[tuple[str, float, int]]:
         if kind not in ("shift", "damp"):
             raise argparse.ArgumentTypeError(f"{item!r}: KIND must be shift or damp")
     return out
+
+
+def _coarse_variants(spec: str) -> list[tuple[int, float]]:
+    """``1:1e-6,3:1e-5`` → [(1, 1e-6), (3, 1e-5)] (``--coarse``: grid level, tolerance)."""
+    out = []
+    for item in (i for i in spec.split(",") if i):
+        try:
+            level, tol = item.split(":")
+            out.append((int(level), float(tol)))
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{item!r}: expected LEVEL:TOL") from None
+        if not (0 <= out[-1][0] <= 9 and 0 < out[-1][1] < 1e-2):
+            raise argparse.ArgumentTypeError(f"{item!r}: LEVEL 0-9, TOL in (0, 1e-2) hartree")
+    return out
+
+
+def _coarse_then_full(mol, cfg: PyscfEngineConfig, guess, level: int, tol: float):
+    """SCF on grid ``level`` to ``tol`` (hartree) from ``guess``, then with ``cfg``'s settings
+    from its density; returns the two drivers (coarse, full)."""
+    coarse = _solve(mol, cfg.model_copy(update={"grid_level": level, "conv_tol": tol}), guess)
+    return coarse, _solve(mol, cfg, coarse.dm, f"coarse SCF (grid {level}, {tol:g} Eh)")
 
 
 def _total(dm: np.ndarray) -> np.ndarray:
@@ -296,6 +325,13 @@ def main() -> None:
         help="also each warm guess with a level shift or damping for its first cycles: "
         "KIND:VALUE:CYCLES, comma-separated, KIND shift (hartree) or damp (fraction kept)",
     )
+    ap.add_argument(
+        "--coarse",
+        type=_coarse_variants,
+        default=[],
+        help="also each step in two stages, from the warm and the fresh guess: an SCF on grid "
+        "LEVEL to TOL hartree, then the engine's: LEVEL:TOL, comma-separated",
+    )
     ap.add_argument("--threads", type=int, default=2)
     ap.add_argument("--root", type=Path, default=None, help="keep (and reuse) campaigns here")
     args = ap.parse_args()
@@ -408,6 +444,26 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
                     step_seconds=round(t_cg, 2),
                     smallest_gap_eV=round(gap * Hartree, 3),
                     guess_after_step=_diagnostics(ks, dm1),
+                )
+        coarse_starts = (
+            [(c, warm_start_guess(mol, chk_prev, mol.spin != 0, c)[0]) for c in constructions]
+            + [("fresh", None)]
+            if args.coarse and chk_prev is not None
+            else []
+        )
+        for start, guess in coarse_starts:
+            for level, tol in args.coarse:
+                coarse, full = _coarse_then_full(mol, cfg, guess, level, tol)
+                record(
+                    f"{start}+coarse({level},{tol:g})",
+                    n,
+                    cold_run,
+                    full.iterations,
+                    coarse.scf_seconds + full.scf_seconds,
+                    float(full.mf.e_tot) * Hartree,
+                    coarse_iterations=coarse.iterations,
+                    coarse_seconds=round(coarse.scf_seconds, 2),
+                    coarse_minus_cold_eV=float(f"{(coarse.mf.e_tot * Hartree) - e_c:.2e}"),
                 )
         if n in relax_steps and n >= 1 and args.geometries > 1:
             warm, cold = _relaxation(atoms, charge, cfg, n, args.geometries)

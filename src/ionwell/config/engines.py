@@ -215,7 +215,8 @@ class PyscfEngineConfig(_Model):
     # the guests' atomic orbitals (right electron count and spin) saves no SCF iterations across
     # an insertion (median warm/cold 1.1 for Li⁺, 0.9-1.1 for smeared Li): it is 3-5x closer to
     # the converged density, and even one Newton step on top of it (5-10x closer again) leaves
-    # 7-9 DIIS cycles, since cycles follow the logarithm of the guess's error. Geometry to
+    # 7-9 DIIS cycles, since cycles follow the logarithm of the guess's error (and a new DIIS
+    # run takes 4-5 even from a density 2e-6-5e-5 eV above the converged one). Geometry to
     # geometry within a relaxation (always on) it needs 0.24-0.52 of the cold iterations. A warm
     # SCF that needed the Newton solver or left an empty level below a filled one is checked
     # against a fresh one
