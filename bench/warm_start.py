@@ -153,39 +153,52 @@ class _EarlyKohnSham(_KohnSham):
         return super()._diis(mf, dm0, stall)
 
 
-def _early_variants(spec: str) -> list[tuple[str, float, int]]:
-    """``shift:0.3:4,damp:0.5:3`` → [("shift", 0.3, 4), ("damp", 0.5, 3)] (``--early``)."""
+def _colon_items(spec: str, fields: str, types: tuple, check) -> list[tuple]:
+    """Comma-separated ``a:b:...`` items of ``spec`` converted by ``types`` (``fields`` names
+    them); ``check(values)`` returns what is wrong with an item, or None."""
     out = []
     for item in (i for i in spec.split(",") if i):
+        parts = item.split(":")
         try:
-            kind, value, cycles = item.split(":")
-            out.append((kind, float(value), int(cycles)))
+            if len(parts) != len(types):
+                raise ValueError
+            values = tuple(t(v) for t, v in zip(types, parts, strict=True))
         except ValueError:
-            raise argparse.ArgumentTypeError(f"{item!r}: expected KIND:VALUE:CYCLES") from None
-        if kind not in ("shift", "damp"):
-            raise argparse.ArgumentTypeError(f"{item!r}: KIND must be shift or damp")
+            raise argparse.ArgumentTypeError(f"{item!r}: expected {fields}") from None
+        problem = check(values)
+        if problem:
+            raise argparse.ArgumentTypeError(f"{item!r}: {problem}")
+        out.append(values)
     return out
+
+
+def _early_variants(spec: str) -> list[tuple[str, float, int]]:
+    """``shift:0.3:4,damp:0.5:3`` → [("shift", 0.3, 4), ("damp", 0.5, 3)] (``--early``)."""
+    return _colon_items(
+        spec,
+        "KIND:VALUE:CYCLES",
+        (str, float, int),
+        lambda v: None if v[0] in ("shift", "damp") else "KIND must be shift or damp",
+    )
 
 
 def _coarse_variants(spec: str) -> list[tuple[int, float]]:
     """``1:1e-6,3:1e-5`` → [(1, 1e-6), (3, 1e-5)] (``--coarse``: grid level, tolerance)."""
-    out = []
-    for item in (i for i in spec.split(",") if i):
-        try:
-            level, tol = item.split(":")
-            out.append((int(level), float(tol)))
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"{item!r}: expected LEVEL:TOL") from None
-        if not (0 <= out[-1][0] <= 9 and 0 < out[-1][1] < 1e-2):
-            raise argparse.ArgumentTypeError(f"{item!r}: LEVEL 0-9, TOL in (0, 1e-2) hartree")
-    return out
+    return _colon_items(
+        spec,
+        "LEVEL:TOL",
+        (int, float),
+        lambda v: (
+            None if 0 <= v[0] <= 9 and 0 < v[1] < 1e-2 else "LEVEL 0-9, TOL in (0, 1e-2) hartree"
+        ),
+    )
 
 
 def _coarse_then_full(mol, cfg: PyscfEngineConfig, guess, level: int, tol: float):
     """SCF on grid ``level`` to ``tol`` (hartree) from ``guess``, then with ``cfg``'s settings
     from its density; returns the two drivers (coarse, full)."""
     coarse = _solve(mol, cfg.model_copy(update={"grid_level": level, "conv_tol": tol}), guess)
-    return coarse, _solve(mol, cfg, coarse.dm, f"coarse SCF (grid {level}, {tol:g} Eh)")
+    return coarse, _solve(mol, cfg, coarse.dm)
 
 
 def _total(dm: np.ndarray) -> np.ndarray:
@@ -402,8 +415,10 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
             )
         print(json.dumps(row), flush=True)
         cold_run = (it_c, t_c, e_c)
+        warm_guesses = {}  # construction → guess, for --coarse
         for c in constructions if chk_prev is not None else ():
             dm0, label = warm_start_guess(mol, chk_prev, mol.spin != 0, c)
+            warm_guesses[c] = dm0
             w = _solve(mol, cfg, dm0, label)
             record(
                 c,
@@ -418,8 +433,7 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
             )
             for kind, value, cycles in args.early:
                 key = f"{c}+{kind}({value:g}x{cycles})"
-                ks_e = _EarlyKohnSham(mol, cfg, kind, value, cycles)
-                ks_e = _solve(mol, cfg, dm0, f"{label} + {key}", ks_e)
+                ks_e = _solve(mol, cfg, dm0, ks=_EarlyKohnSham(mol, cfg, kind, value, cycles))
                 record(
                     key,
                     n,
@@ -445,13 +459,7 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
                     smallest_gap_eV=round(gap * Hartree, 3),
                     guess_after_step=_diagnostics(ks, dm1),
                 )
-        coarse_starts = (
-            [(c, warm_start_guess(mol, chk_prev, mol.spin != 0, c)[0]) for c in constructions]
-            + [("fresh", None)]
-            if args.coarse and chk_prev is not None
-            else []
-        )
-        for start, guess in coarse_starts:
+        for start, guess in [*warm_guesses.items(), ("fresh", None)] if warm_guesses else ():
             for level, tol in args.coarse:
                 coarse, full = _coarse_then_full(mol, cfg, guess, level, tol)
                 record(
