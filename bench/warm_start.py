@@ -18,12 +18,13 @@ the cold solution of step n − 1 with each construction of
 
 Diagnostics say where the iterations go, per guess: ``distance`` = ‖D₀ − D‖ (Frobenius,
 AO basis) between the guess and the converged density, ``distance_orthonormal`` =
-‖S^½ (D₀ − D) S^½‖, the same in Löwdin-orthonormalised AOs (S the overlap matrix; the AO figure
-grows where the basis is nearly linearly dependent, as with 6-31G on Li atoms 1.75-2.1 Å from C
-and each other: 32 in AOs against 1.8 orthonormalised at one benzene step), and
+‖S^½ (D₀ − D) S^½‖, the same in Löwdin-orthonormalised AOs (S the overlap matrix; the AO
+figure grows where the basis is nearly linearly dependent, as with 6-31G on Li atoms 1.75-2.1 Å
+from C and each other: 32 in AOs against 1.8 orthonormalised at one benzene step), and
 ``first_cycle_eV`` = the energy after one diagonalisation of the guess's Fock matrix minus the
-converged energy (what the SCF's first cycle sees); ``response`` = ‖D_host,n − D_{n−1}‖ is how much the new guest
-changed the density of the atoms that were already there (what no guess from step n − 1 holds).
+converged energy (what the SCF's first cycle sees); ``response`` = ‖D_host,n − D_{n−1}‖ is how
+much the new guest changed the density of the atoms that were already there (what no guess
+from step n − 1 holds).
 
 Across one insertion the guess changes; within a step's relaxation the atoms stay and every
 geometry starts from the previous geometry's orbitals (always on in the engine). For steps
@@ -72,6 +73,7 @@ from ase.constraints import FixAtoms
 from ase.io import read
 from ase.optimize import BFGS
 from ase.units import Hartree
+from pyscf.lo import orth
 from pyscf.scf import chkfile
 
 from ionwell.config.campaign import PyscfEngineConfig
@@ -219,8 +221,7 @@ def _diagnostics(ks: _KohnSham, dm0) -> dict[str, float]:
     s = mf.get_ovlp()
     e, c = mf.eig(mf.get_fock(dm=dm0), s)
     dm1 = mf.make_rdm1(c, mf.get_occ(e, c))
-    lam, vec = np.linalg.eigh(s)
-    s_half = (vec * np.sqrt(lam)) @ vec.T
+    s_half = s @ orth.lowdin(s)  # S^½ = S S^-½, PySCF's Löwdin S^-½ as in ionwell.science.charges
     diff = _total(dm0) - _total(ks.dm)
     return {
         "distance": round(float(np.linalg.norm(diff)), 3),
