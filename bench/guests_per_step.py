@@ -1,6 +1,7 @@
 """What inserting k guests per step saves: engine runs, engine time and formation energies.
 
     python bench/guests_per_step.py [--guests 8] [--k 1,2,4] [--config config/demo-li-trilayer.yaml]
+                                    [--root DIR]
 
 Runs the same campaign (by default the demo: neutral Li into an AB trilayer of coronene sheets,
 GFN2-xTB with tblite, guests relaxed) to the same number of guests with ``placement.per_step``
@@ -8,7 +9,9 @@ GFN2-xTB with tblite, guests relaxed) to the same number of guests with ``placem
 (every computed round, rejected sites included), relaxation steps, engine time (the ledger's
 wall time of each step from prepare to assess, summed: engine time and a little bookkeeping) and the total energy at every guest count reached, and for
 counts shared with k = 1 the difference of the formation energy per guest,
-[E_k(n) - E_1(n)] / n (E(0) and μ cancel; meV). Run by hand; not a test. Prints JSON lines.
+[E_k(n) - E_1(n)] / n (E(0) and μ cancel; meV), and the guests' positions at the end (Å), to
+tell apart arrangements. ``--root`` keeps the campaigns there (default: a temporary folder).
+Run by hand; not a test. Prints JSON lines.
 """
 
 from __future__ import annotations
@@ -22,8 +25,11 @@ import time
 from pathlib import Path
 
 import yaml
+from ase.io import read
 
+from ionwell.store.campaign import CampaignPaths
 from ionwell.store.ledger import read_ledger
+from ionwell.store.paths import StepPaths
 
 
 def _run(config: dict, k: int, guests: int, root: Path) -> dict:
@@ -57,7 +63,15 @@ def _run(config: dict, k: int, guests: int, root: Path) -> dict:
         "step_time_s": round(sum(r.wall_time for r in recs), 1),  # prepare to assess
         "campaign_wall_s": round(wall, 1),
         "energies": {r.guests: r.energy for r in recs},
+        "guest_positions": _guest_positions(campaign, recs[-1].step, config),
     }
+
+
+def _guest_positions(campaign: Path, step: int, config: dict) -> list[list[float]]:
+    """Positions (Å, rounded to 0.01) of the guest atoms in the last step's final structure."""
+    element = config["guest"]["element"]
+    atoms = read(StepPaths(CampaignPaths(campaign).step(step)).relaxed)
+    return [[round(float(x), 2) for x in a.position] for a in atoms if a.symbol == element]
 
 
 def main() -> None:
@@ -67,12 +81,15 @@ def main() -> None:
     )
     ap.add_argument("--guests", type=int, default=8)
     ap.add_argument("--k", default="1,2,4")
+    ap.add_argument("--root", type=Path, default=None, help="keep the campaigns here")
     args = ap.parse_args()
     config = yaml.safe_load(Path(args.config).read_text())
     results = []
     with tempfile.TemporaryDirectory() as tmp:
+        root = args.root or Path(tmp)
+        root.mkdir(parents=True, exist_ok=True)
         for k in (int(x) for x in args.k.split(",")):
-            results.append(_run(config, k, args.guests, Path(tmp)))
+            results.append(_run(config, k, args.guests, root))
             print(json.dumps(results[-1]), flush=True)
     base = results[0]
     for r in results[1:]:
