@@ -53,7 +53,7 @@ def _run(config: dict, k: int, guests: int, root: Path) -> dict:
     rounds = len(list(campaign.glob("steps/*/flow/r*.computed.json")))
     relax = 0
     for r in recs:
-        res = json.loads((campaign / "steps" / f"{r.step:04d}" / "result.json").read_text())
+        res = json.loads(StepPaths(CampaignPaths(campaign).step(r.step)).result.read_text())
         relax += int(res.get("relax_steps") or 0)
     return {
         "k": k,
