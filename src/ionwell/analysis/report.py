@@ -40,8 +40,8 @@ from ionwell.audit.status import CampaignStatus, campaign_status
 from ionwell.errors import IonwellError
 from ionwell.science import energetics
 from ionwell.science.checks import Finding
-from ionwell.store.campaign import CampaignPaths, atomic_write_text, load_frozen, step_label
-from ionwell.store.paths import StepPaths
+from ionwell.store.campaign import CampaignPaths, atomic_write_text, load_frozen
+from ionwell.store.paths import StepPaths, step_label
 
 __all__ = [
     "CampaignReport",

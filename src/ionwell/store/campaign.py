@@ -28,10 +28,9 @@ from typing import ClassVar
 
 from ionwell.config.campaign import Campaign, config_diff, dump_campaign, load_campaign
 from ionwell.errors import ConfigError, LockError, naming_file
+from ionwell.store.paths import step_label
 
 log = logging.getLogger(__name__)
-
-STEP_DIGITS = 4
 
 
 @dataclass(frozen=True)
@@ -82,11 +81,6 @@ class CampaignPaths:
 
     def step(self, n: int) -> Path:
         return self.steps / step_label(n)
-
-
-def step_label(n: int) -> str:
-    """Folder name of step ``n`` (zero-padded)."""
-    return f"{n:0{STEP_DIGITS}d}"
 
 
 # ---------------------------------------------------------------------------------------------

@@ -37,8 +37,8 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from ionwell.errors import LedgerError
 from ionwell.science.placement import Decision
-from ionwell.store.campaign import CampaignPaths, atomic_write_text, fsync_dir, step_label
-from ionwell.store.paths import UNRECORDED_DIRS, UNRECORDED_NAMES, StepPaths
+from ionwell.store.campaign import CampaignPaths, atomic_write_text, fsync_dir
+from ionwell.store.paths import UNRECORDED_DIRS, UNRECORDED_NAMES, StepPaths, step_label
 
 log = logging.getLogger(__name__)
 
