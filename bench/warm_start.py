@@ -1,10 +1,11 @@
 """Warm start vs fresh guess: SCF iterations and SCF time of the embedded PySCF engine.
 
     python bench/warm_start.py [--layers 2] [--shells 1] [--steps 4] [--modes neutral,cation]
+                               [--constructions auto,orbitals]
                                [--xc lda,vwn] [--xc pbe] [--basis sto-3g] [--basis 6-31g]
                                [--relax-steps 1,2] [--geometries 4] [--smearing 0] [--newton J,full]
                                [--from-step 1] [--early shift:0.3:4,damp:0.5:3]
-                               [--coarse 1:1e-6,3:1e-5] [--root DIR]
+                               [--coarse 1:1e-6,3:1e-5] [--adiis] [--root DIR]
 
 One campaign of ``--steps`` neutral Li insertions into a flake (default: a benzene bilayer, 24
 atoms; the issue's coronene bilayer is ``--shells 2``, ~700 s per single point on two cores)
@@ -14,7 +15,8 @@ and guest mode the structures are then solved again, SCF only, through the engin
 (DIIS, maximum overlap for open shells, the Newton fallback): step n with n guests and charge 0
 (neutral) or +n (cation, every Li a Li⁺), from PySCF's fresh guess (cold) and, for n ≥ 1, from
 the cold solution of step n − 1 with each construction of
-:data:`ionwell.engines.pyscf_engine.WARM_CONSTRUCTIONS`.
+:data:`ionwell.engines.pyscf_engine.WARM_CONSTRUCTIONS` asked for (``--constructions``;
+``auto`` is the engine's choice: neutral atoms for ions, orbitals otherwise).
 
 Diagnostics say where the iterations go, per guess: ``distance`` = ‖D₀ − D‖ (Frobenius,
 AO basis) between the guess and the converged density, ``distance_orthonormal`` =
@@ -51,6 +53,14 @@ count the second stage's cycles as ``iterations`` (``coarse_iterations`` beside 
 stages in ``seconds``. ``3:1e-5`` (the same grid, a looser tolerance) measures how many
 cycles a new SCF needs from a density that is already nearly converged.
 
+``--adiis`` also solves each step from the fresh guess and from each warm guess with ADIIS+DIIS
+(Hu and Yang's combination, published 2010) in place of the engine's DIIS: the Fock matrix of
+ADIIS (the convex combination of the past Fock matrices that minimises a quadratic model of
+the energy) while the largest element of the DIIS error vector exceeds 0.1, plain DIIS below
+1e-4, a linear blend between. ADIIS is built for starts far from convergence, as the warm
+guess's first Fock matrices are on coronene. Its rows are ``fresh+adiis`` and ``<construction>+adiis``,
+both against the plain cold SCF.
+
 Prints one JSON line per SCF comparison and, per functional, basis and mode, the median
 ratios warm/cold. ``--root`` keeps the campaign there and reuses it. Run by hand; not a test.
 """
@@ -75,9 +85,11 @@ from ase.optimize import BFGS
 from ase.units import Hartree
 from pyscf.lo import orth
 from pyscf.scf import chkfile
+from pyscf.scf import diis as scf_diis
 
 from ionwell.config.campaign import PyscfEngineConfig
 from ionwell.engines.pyscf_engine import (
+    WARM_AUTO,
     WARM_CONSTRUCTIONS,
     PyscfCalculator,
     _KohnSham,
@@ -155,6 +167,39 @@ class _EarlyKohnSham(_KohnSham):
             return plain(h1e, s1e, vhf, dm, cycle, diis, **kwargs)
 
         mf.get_fock = get_fock
+        return super()._diis(mf, dm0, stall)
+
+
+class _AdiisDiis(scf_diis.CDIIS):
+    """ADIIS+DIIS: ADIIS's Fock matrix while the largest element of the DIIS error vector is
+    above ``HIGH``, DIIS's below ``LOW``, blended linearly between (the thresholds 0.1 and
+    1e-4 of Hu and Yang's paper, J. Chem. Phys. 132, 054109 (2010), from memory). The DIIS
+    history is PySCF's CDIIS; the ADIIS one the last ``space`` (density, Fock) pairs."""
+
+    HIGH, LOW = 0.1, 1e-4
+
+    def update(self, s, d, f, *args, **kwargs):
+        pairs = getattr(self, "_pairs", [])
+        self._pairs = [*pairs, (np.asarray(d), np.asarray(f))][-self.space :]
+        err = float(np.abs(scf_diis.get_err_vec(s, d, f, self.Corth)).max())
+        f_diis = scf_diis.CDIIS.update(self, s, d, f)
+        if err < self.LOW:
+            return f_diis
+        ds = np.array([p[0] for p in self._pairs])
+        fs = np.array([p[1] for p in self._pairs])
+        _, c = scf_diis.adiis_minimize(ds, fs, len(ds) - 1)
+        f_adiis = np.einsum("i,i...->...", c, fs)
+        if err > self.HIGH:
+            return f_adiis
+        w = (err - self.LOW) / (self.HIGH - self.LOW)
+        return w * f_adiis + (1 - w) * f_diis
+
+
+class _AdiisKohnSham(_KohnSham):
+    """The engine's SCF driver with ADIIS+DIIS (:class:`_AdiisDiis`) in place of DIIS."""
+
+    def _diis(self, mf, dm0, stall: bool = True) -> tuple[bool, int]:
+        mf.DIIS = _AdiisDiis
         return super()._diis(mf, dm0, stall)
 
 
@@ -319,7 +364,12 @@ def main() -> None:
     ap.add_argument("--modes", default="neutral,cation")
     ap.add_argument("--xc", action="append", help="functional(s), repeatable (default lda,vwn)")
     ap.add_argument("--basis", action="append", help="basis set(s), repeatable (default sto-3g)")
-    ap.add_argument("--constructions", default="orbitals,blocks")
+    ap.add_argument(
+        "--constructions",
+        default="auto,orbitals",
+        help=f"warm guesses, comma-separated, of {(WARM_AUTO, *WARM_CONSTRUCTIONS)} "
+        "(auto: the engine's choice)",
+    )
     ap.add_argument("--relax-steps", default="1,2", help="steps whose relaxation is measured")
     ap.add_argument("--geometries", type=int, default=4, help="geometries per relaxation")
     ap.add_argument("--smearing", type=float, default=0.0, help="Fermi smearing, eV (0: none)")
@@ -355,13 +405,19 @@ def main() -> None:
         help="also each step in two stages, from the warm and the fresh guess: an SCF on grid "
         "LEVEL to TOL hartree, then the engine's: LEVEL:TOL, comma-separated",
     )
+    ap.add_argument(
+        "--adiis",
+        action="store_true",
+        help="also each step from the fresh and each warm guess with ADIIS+DIIS",
+    )
     ap.add_argument("--threads", type=int, default=2)
     ap.add_argument("--root", type=Path, default=None, help="keep (and reuse) campaigns here")
     args = ap.parse_args()
     constructions = [c for c in args.constructions.split(",") if c]
-    unknown = set(constructions) - set(WARM_CONSTRUCTIONS)
+    known = (WARM_AUTO, *WARM_CONSTRUCTIONS)
+    unknown = set(constructions) - set(known)
     if unknown:
-        ap.error(f"--constructions: unknown {sorted(unknown)}; choose from {WARM_CONSTRUCTIONS}")
+        ap.error(f"--constructions: unknown {sorted(unknown)}; choose from {known}")
     relax_steps = {int(s) for s in args.relax_steps.split(",") if s}
     with tempfile.TemporaryDirectory() as tmp:
         root = args.root or Path(tmp)
@@ -470,6 +526,17 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
                     guess_after_step=_diagnostics(ks, dm1),
                 )
         for start, guess in [*warm_guesses.items(), ("fresh", None)] if warm_guesses else ():
+            if args.adiis:
+                a = _solve(mol, cfg, guess, ks=_AdiisKohnSham(mol, cfg))
+                record(
+                    f"{start}+adiis",
+                    n,
+                    cold_run,
+                    a.iterations,
+                    a.scf_seconds,
+                    float(a.mf.e_tot) * Hartree,
+                    solver=a.solver,
+                )
             for level, tol in args.coarse:
                 coarse, full = _coarse_then_full(mol, cfg, guess, level, tol)
                 record(

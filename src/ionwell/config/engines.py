@@ -213,7 +213,8 @@ class PyscfEngineConfig(_Model):
     # off by default: measured with bench/warm_start.py (benzene bilayer + 1-3 Li⁺, LDA and PBE,
     # STO-3G and 6-31G; Li with 0.1 eV smearing) the guess from the previous step's orbitals plus
     # the guests' atomic orbitals (right electron count and spin) saves no SCF iterations across
-    # an insertion (median warm/cold 1.1 for Li⁺, 0.9-1.1 for smeared Li): it is 3-5x closer to
+    # an insertion (median warm/cold 1.1 for Li⁺, 0.9-1.1 for smeared Li; with neutral atoms for
+    # ions, the engine's choice now, 0.9 and 0.96 for Li⁺ on benzene and coronene): 3-5x closer to
     # the converged density, and even one Newton step on top of it (5-10x closer again) leaves
     # 7-9 DIIS cycles, since cycles follow the logarithm of the guess's error (and a new DIIS
     # run takes 4-5 even from a density 2e-6-5e-5 eV above the converged one). Geometry to
@@ -222,8 +223,9 @@ class PyscfEngineConfig(_Model):
     # against a fresh one
     warm_start: bool = Field(
         False,
-        description="start the SCF from the previous step's orbitals plus the new guests' atomic "
-        "orbitals (measured: no fewer SCF iterations; see bench/warm_start.py)",
+        description="start the SCF from the previous step's solution plus the new guests' atoms "
+        "(ions as neutral atoms; measured: at most a few fewer SCF iterations, see "
+        "bench/warm_start.py)",
     )
     density_fit: bool = Field(True, description="density-fit the Coulomb term (faster gradients)")
     grid_level: int | None = Field(

@@ -25,9 +25,11 @@ Science in brief:
   frontier levels are (nearly) degenerate once guests donate electrons converge far better with
   Fermi smearing (``engine.smearing``);
 * warm start (``engine.warm_start``): the first SCF of a step starts from the previous step's
-  occupied orbitals plus the new guests' atomic orbitals, orthonormalised together, with the
-  new electron count and spin (:func:`warm_start_guess`); the guess used is recorded in
-  ``StepResult.guess`` and the ledger, "cold: <why>" when the previous step cannot be used;
+  solution plus the new guests' atoms (:func:`warm_start_guess`): neutral guests as atomic
+  orbitals orthonormalised together with the previous occupied orbitals, with the new electron
+  count and spin; ions as neutral atomic densities, which keep the ion's bare charge out of the
+  first Fock matrix. The guess used is recorded in ``StepResult.guess`` and the ledger,
+  "cold: <why>" when the previous step cannot be used;
 * relaxation uses an ASE optimizer on analytic PySCF gradients; each geometry's SCF starts from
   the previous geometry's orbitals and follows the same electronic state;
 * the potential map is the potential felt by a positive test charge, nuclear minus electronic,
@@ -82,6 +84,7 @@ __all__ = [
     "POTENTIAL",
     "PyscfCalculator",
     "PyscfEngine",
+    "auto_construction",
     "build_mol",
     "electronic_potential",
     "fitted_electronic_potential",
@@ -489,17 +492,25 @@ def _orthonormal(mo: np.ndarray, s: np.ndarray) -> np.ndarray:
 # ---------------------------------------------------------------------------------------------
 # warm start
 
-#: Ways to build the first density of a step from the previous step's checkpoint (the engine
-#: uses :data:`WARM_CONSTRUCTION`; the others are kept for ``bench/warm_start.py``):
+#: Ways to build the first density of a step from the previous step's checkpoint:
 #: ``orbitals`` the previous occupied orbitals plus the new atoms' occupied atomic orbitals,
 #: orthonormalised together in the new overlap metric (an idempotent density with the new
 #: electron count and spin, cross blocks included); ``blocks`` the previous density per spin
 #: plus the new atoms' atomic densities with the new electron count and spin, cross blocks zero;
-#: ``embed`` the previous density plus neutral atomic densities (the first version: wrong
-#: electron count for a charged guest, no spin on the new atoms).
-WARM_CONSTRUCTIONS = ("orbitals", "blocks", "embed")
-#: The construction the engine uses (fewest SCF iterations in bench/warm_start.py).
-WARM_CONSTRUCTION = "orbitals"
+#: ``neutral-atoms`` the previous density plus the new atoms' neutral atomic densities, cross
+#: blocks zero, split evenly between the spin channels (an ion's electron count is wrong in the
+#: guess; the first diagonalisation fills the right number of levels).
+WARM_CONSTRUCTIONS = ("orbitals", "blocks", "neutral-atoms")
+#: The engine's choice (:func:`auto_construction`): ``neutral-atoms`` when the new atoms are
+#: ions, ``orbitals`` otherwise. With an ion's own electron count the guess holds its bare
+#: charge in a density that has not responded to it, and the first Fock matrix is far off:
+#: measured (bench/warm_start.py, Li⁺, LDA/STO-3G, step 1) the first cycle lands 2.7 eV
+#: (benzene bilayer) and 30 eV (coronene bilayer) above the converged energy, against 0.37 and
+#: 0.49 eV with neutral atoms; SCF cycles 9 and 15 against 8 and 11 (fresh guess: 9 and 11).
+#: For neutral guests (Li, 0.1 eV smearing) the orbitals construction, which carries the new
+#: spin, needs 0.83-1.12 of the fresh guess's cycles (medians) and neutral atoms about the same.
+WARM_AUTO = "auto"
+WARM_CONSTRUCTION = WARM_AUTO
 
 
 def _spin_blocks(dm: np.ndarray, unrestricted: bool) -> np.ndarray:
@@ -561,6 +572,16 @@ def _new_atom_orbitals(mol, first: int) -> tuple[np.ndarray, np.ndarray]:
     return np.hstack(cols), np.concatenate(energies)
 
 
+def auto_construction(mol, prev, n_prev: int) -> str:
+    """The warm-start construction for ``mol`` after ``prev`` (whose atoms are ``mol``'s first
+    ``n_prev``): ``neutral-atoms`` when the atoms added since bring another number of electrons
+    than their neutral atoms (ions, e.g. Li⁺: 2 of 3), ``orbitals`` otherwise (see
+    :data:`WARM_AUTO`)."""
+    neutral = float(np.sum(mol.atom_charges()[n_prev:]))  # valence electrons with an ECP
+    brought = mol.nelectron - prev.nelectron
+    return "neutral-atoms" if mol.natm > n_prev and abs(brought - neutral) > 1e-8 else "orbitals"
+
+
 def warm_start_guess(
     mol, chk: Path, unrestricted: bool, construction: str = WARM_CONSTRUCTION
 ) -> tuple[np.ndarray | None, str]:
@@ -568,13 +589,15 @@ def warm_start_guess(
 
     Usable when ``mol``'s atoms start with the previous molecule's atoms (same symbols in the
     same order, same basis): the previous step's solution describes the leading atoms, the new
-    atoms (the guests added since) get atomic orbitals, and the electrons they bring are the
-    difference of the electron counts per spin channel (so a cation guest brings its core only,
-    and the spin of the new system is right). ``construction`` is one of
-    :data:`WARM_CONSTRUCTIONS`. Returns (density matrix or None, the guess to record): e.g.
-    ``"previous step (orbitals)"``, or ``"cold: atoms differ from the previous step"``.
+    atoms (the guests added since) get atomic orbitals, and (``orbitals``, ``blocks``) the
+    electrons they bring are the difference of the electron counts per spin channel (so a
+    cation guest brings its core only, and the spin of the new system is right), or
+    (``neutral-atoms``) their neutral atoms' electrons. ``construction`` is one of
+    :data:`WARM_CONSTRUCTIONS` or ``auto`` (the engine's: :func:`auto_construction`). Returns
+    (density matrix or None, the guess to record): e.g. ``"previous step (orbitals)"``, or
+    ``"cold: atoms differ from the previous step"``.
     """
-    if construction not in WARM_CONSTRUCTIONS:
+    if construction not in (*WARM_CONSTRUCTIONS, WARM_AUTO):
         raise ValueError(f"unknown warm-start construction {construction!r}")
     _, _, _, scf, *_ = _pyscf()
     try:
@@ -598,8 +621,10 @@ def warm_start_guess(
         log.info("warm start: %s used another basis; using a fresh guess", chk)
         return None, "cold: basis differs from the previous step"
     mo, occ = np.asarray(data["mo_coeff"]), np.asarray(data["mo_occ"], dtype=float)
+    if construction == WARM_AUTO:
+        construction = auto_construction(mol, prev, n_prev)
     label = f"previous step ({construction})"
-    if construction == "embed":
+    if construction == "neutral-atoms":
         return _embed_neutral_atoms(mol, mo, occ, nao_prev, unrestricted), label
 
     channels = _channels(mo, occ)
@@ -641,7 +666,7 @@ def warm_start_guess(
 def _embed_neutral_atoms(
     mol, mo: np.ndarray, occ: np.ndarray, nao_prev: int, unrestricted: bool
 ) -> np.ndarray:
-    """The first warm start (``embed``): previous density plus neutral atomic densities,
+    """The ``neutral-atoms`` warm start: previous density plus neutral atomic densities,
     cross blocks zero, the atomic part split evenly between the spin channels."""
     _, _, _, scf, *_ = _pyscf()
     if mo.ndim == 3:  # unrestricted: (alpha, beta)
