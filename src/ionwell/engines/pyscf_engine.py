@@ -625,7 +625,7 @@ def warm_start_guess(
         construction = auto_construction(mol, prev, n_prev)
     label = f"previous step ({construction})"
     if construction == "neutral-atoms":
-        return _embed_neutral_atoms(mol, mo, occ, nao_prev, unrestricted), label
+        return _with_neutral_atoms(mol, mo, occ, nao_prev, unrestricted), label
 
     channels = _channels(mo, occ)
     # electrons the new atoms bring, per spin channel; the previous channels may swap
@@ -663,7 +663,7 @@ def warm_start_guess(
     return (dm if unrestricted else dm[0] + dm[1]), label
 
 
-def _embed_neutral_atoms(
+def _with_neutral_atoms(
     mol, mo: np.ndarray, occ: np.ndarray, nao_prev: int, unrestricted: bool
 ) -> np.ndarray:
     """The ``neutral-atoms`` warm start: previous density plus neutral atomic densities,
