@@ -846,3 +846,55 @@ def test_restart_files_that_do_not_converge_are_dropped_for_a_fresh_guess(tmp_pa
     assert "restart no" in (work / "job.inp").read_text()
     # the same SCF solution as the fresh run: 1e-6 eV
     assert out.result.energy == pytest.approx(cold.result.energy, abs=1e-6)
+
+
+def test_an_excited_state_the_program_calls_converged_is_redone_from_a_fresh_guess(
+    tmp_path, monkeypatch, caplog
+):
+    """converged.aufbau: a gap below -tolerance (an empty orbital under a filled one) is an
+    excited state, counted as not converged; the first try was from restart files, so the
+    retry starts from the program's own guess. The runner with RUNNER_EXCITE=restart ends a
+    restarted water in a real excited state (maximum overlap method; measured with this runner
+    at grid level 3: 28.7 eV above the ground state, gaps -19.1 eV, ground-state gap 9.9 eV)
+    and says 'SCF converged'. Without the aufbau check that state is taken as the result."""
+    from ionwell.engines.run import run_engine
+
+    aufbau = {"file": "job.log", "regex": r"^gap\s+(\S+) hartree", "unit": "hartree"}
+    checked = _campaign(
+        tmp_path, {**COMMAND, "converged": {**COMMAND["converged"], "aufbau": aufbau}}
+    )
+    water = molecule("H2O")
+    ctx = ComputeContext(step=0)
+    cold = run_engine(checked, water, tmp_path / "cold", ctx)
+    gaps = re.findall(r"^gap\s+(\S+) hartree", (tmp_path / "cold" / "job.log").read_text(), re.M)
+    assert cold.result.scf_converged and cold.remedies == [] and float(gaps[0]) > 0
+
+    monkeypatch.setenv("RUNNER_EXCITE", "restart")
+    # no check: the excited state passes for a converged result, far above the ground state
+    unchecked = _campaign(tmp_path, COMMAND)
+    (tmp_path / "plain").mkdir()
+    shutil.copy(tmp_path / "cold" / "runner.chk", tmp_path / "plain" / "runner.chk")
+    plain = run_engine(unchecked, water, tmp_path / "plain", ctx)
+    assert plain.result.scf_converged and plain.result.warm_started
+    assert plain.result.energy - cold.result.energy > 10.0
+
+    work = tmp_path / "engine"
+    work.mkdir()
+    shutil.copy(tmp_path / "cold" / "runner.chk", work / "runner.chk")
+    with caplog.at_level("WARNING", logger="ionwell"):
+        out = run_engine(checked, water, work, ctx)
+    assert out.result.scf_converged and not out.result.warm_started
+    assert out.remedies == [
+        "SCF retry with a fresh guess (the restart files did not converge): converged"
+    ]
+    found = [r.getMessage() for r in caplog.records if "HOMO-LUMO gap" in r.getMessage()]
+    assert len(found) == 1 and "an empty orbital below a filled one" in found[0]
+    assert float(re.search(r"gap (-\d+\.\d+) eV", found[0]).group(1)) < -5.0
+    # the ground state of the fresh run: 1e-6 eV
+    assert out.result.energy == pytest.approx(cold.result.energy, abs=1e-6)
+
+
+def test_an_aufbau_pattern_needs_one_group(tmp_path):
+    bad = {"file": "job.log", "regex": r"^gap\s+\S+ hartree"}
+    with pytest.raises(ConfigError, match="capturing group"):
+        _campaign(tmp_path, {**COMMAND, "converged": {**COMMAND["converged"], "aufbau": bad}})

@@ -297,6 +297,58 @@ def test_an_unconverged_scf_is_retried_with_the_definitions_remedies(h2_check, t
     assert out.result.energy == pytest.approx(report.energy, abs=1e-3)
 
 
+@pytest.mark.slow
+def test_an_excited_state_left_by_a_restart_is_redone_from_the_atomic_guess(tmp_path, caplog):
+    """data/cp2k-benzene-excited.wfn (13.7 KB) is the wavefunction a fresh-clone CI run left:
+    cp2k.psmp 2023.1 was stopped early in benzene's SCF (soft stop), and the resumed OT wandered
+    and said converged at -37.296546 hartree, 10.7 eV above the ground state (-37.688871), with
+    a HOMO-LUMO gap of -5.41 eV (measured here, restarting from it with NLUMO printed). OT's
+    gradient is zero there, so a restart from it stays (one OT step). converged.aufbau must
+    count it as not converged, and the retry from the atomic guess must find the ground state.
+    ~40 s on 2 cores."""
+    from ase.build import molecule
+
+    from ionwell.config.campaign import parse_campaign
+    from ionwell.config.definitions import resolve_engines
+    from ionwell.engines.base import ComputeContext
+    from ionwell.engines.run import run_engine
+
+    data = {
+        "name": "cp2k-excited",
+        "host": {"builder": {"kind": "flake", "layers": 1, "shells": 1}},
+        "engine": {"definition": "cp2k"},
+        "relax": {"enabled": False},
+        "remedies": {"scf": []},
+    }
+    campaign = parse_campaign(resolve_engines(data, tmp_path))
+    work = tmp_path / "engine"
+    work.mkdir()
+    # the restart file a stopped attempt of this step left (restart.keep)
+    shutil.copy(
+        Path(__file__).parent / "data" / "cp2k-benzene-excited.wfn", work / "iw-RESTART.wfn"
+    )
+    ctx = ComputeContext(step=0, charge=0, potential=False)
+    with caplog.at_level("WARNING", logger="ionwell"):
+        out = run_engine(campaign, molecule("C6H6"), work, ctx)
+    found = [r.getMessage() for r in caplog.records if "HOMO-LUMO gap" in r.getMessage()]
+    assert len(found) == 1, found
+    assert -5.6 < float(re.search(r"gap (-\d+\.\d+) eV", found[0]).group(1)) < -5.2
+    assert out.remedies == [
+        "SCF retry with a fresh guess (the restart files did not converge): converged"
+    ]
+    assert out.result.scf_converged and not out.result.warm_started
+    assert "SCF_GUESS ATOMIC" in (work / "cp2k.inp").read_text()
+    gaps = [
+        float(g)
+        for g in re.findall(r"HOMO - LUMO gap \[eV\] :\s+(\S+)", (work / "cp2k.out").read_text())
+    ]
+    # benzene's PBE gap, measured here: 5.26 eV (PBE gaps of benzene are ~5 eV: common practice)
+    assert len(gaps) == 1 and 4.5 < gaps[0] < 6.0
+    # the ground state an uninterrupted run of the definition gives (see the soft-stop test in
+    # test_soft_stop.py: -37.6888713909 hartree, measured here); 1e-4 hartree is ~3 meV
+    assert out.result.energy / Hartree == pytest.approx(-37.68887139, abs=1e-4)
+
+
 # ---------------------------------------------------------------------------------------------
 # a two-step campaign: benzene, then benzene + Li⁺
 

@@ -25,7 +25,12 @@ Input (keywords one per line, then the geometry block in Å):
 
 Environment: RUNNER_DELAY (seconds to sleep after each SCF iteration, so a test can kill the
 program mid-run; with RUNNER_DELAY_STEP=N only when the input's ``step`` line says N); RUNNER_FAIL=nan|truncate|noenergy|noconverge (write a damaged output, for the
-error tests).
+error tests); RUNNER_EXCITE=restart (a closed shell restarted from runner.chk ends in a real excited
+state: the HOMO's pair moved into the LUMO and kept there by the maximum overlap method, PySCF's
+scf.addons.mom_occ, the way a restart can leave a code's minimiser at a saddle point).
+
+The log ends with each spin channel's ``gap`` (lowest empty minus highest filled orbital energy,
+hartree; negative in an excited state).
 """
 
 from __future__ import annotations
@@ -128,6 +133,19 @@ def main() -> int:
 
     mf.callback = each
     e = mf.kernel(dm0=dm0)
+    if os.environ.get("RUNNER_EXCITE") == "restart" and dm0 is not None and mol.spin == 0:
+        from pyscf import scf
+
+        print("exciting: HOMO pair into the LUMO (maximum overlap method)", flush=True)
+        nocc = mol.nelectron // 2
+        occ = (mf.mo_occ / 2).copy()
+        occ[nocc - 1], occ[nocc] = 0.0, 1.0
+        coeff, setocc = np.array([mf.mo_coeff] * 2), np.array([occ] * 2)
+        excited = dft.UKS(mol)
+        excited.xc, excited.grids.level, excited.conv_tol = mf.xc, mf.grids.level, mf.conv_tol
+        excited.callback = each
+        mf = scf.addons.mom_occ(excited, coeff, setocc)
+        e = mf.kernel(dm0=mf.make_rdm1(coeff, setocc))
     if mf.converged and fail != "noconverge":
         print("SCF converged", flush=True)
     else:
@@ -148,6 +166,10 @@ def main() -> int:
     ene = np.asarray(mf.mo_energy).reshape(-1, mol.nao_nr())
     homo = max(float(ene[c][occ[c] > 0].max()) for c in range(len(occ)))
     print(f"homo {homo:.10f} hartree")
+    for c in range(len(occ)):
+        if (occ[c] > 0).any() and (occ[c] == 0).any():
+            gap = float(ene[c][occ[c] == 0].min() - ene[c][occ[c] > 0].max())
+            print(f"gap {gap:.10f} hartree")
 
     write_mep(mol, mf.make_rdm1(), float(keys.get("spacing", 0.3)), float(keys.get("margin", 3.0)))
     if fail == "truncate":

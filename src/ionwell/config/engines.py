@@ -52,6 +52,7 @@ from pydantic import (
 
 __all__ = [
     "AseEngineConfig",
+    "AufbauSpec",
     "CommandEngineConfig",
     "ConvergencePattern",
     "EngineConfig",
@@ -418,8 +419,37 @@ class ConvergencePattern(_Model):
     _re = field_validator("regex")(classmethod(lambda cls, v: _check_regex(v, groups=None)))
 
 
+class AufbauSpec(_Model):
+    """The gap between the highest filled and the lowest empty orbital that the program prints
+    after its SCF, one line per spin channel (group 1: the gap; every match is checked).
+
+    A ground state with whole occupations fills the lowest orbitals (the aufbau principle), so
+    its gaps are not negative. A gap below ``-tolerance`` means an empty orbital lies below a
+    filled one: the SCF stopped in an excited state, a saddle point of a direct minimisation
+    (e.g. CP2K's OT after a restart from a poor wavefunction). Such a result counts as not
+    converged, and a first try from restart files is repeated from the program's own guess.
+    No matching line (e.g. a smeared run that prints no gap) means nothing to check."""
+
+    file: EnginePath = Field(description="file (glob) in the engine folder, e.g. the program's log")
+    regex: str = Field(description="pattern with one group, the gap; every match is checked")
+    unit: EnergyUnit = "eV"
+    tolerance: float = Field(
+        0.5,
+        ge=0,
+        description="eV: gaps down to minus this pass (an open shell's near-degenerate levels "
+        "may end slightly out of order)",
+    )
+
+    _re = field_validator("regex")(classmethod(lambda cls, v: _check_regex(v, groups=1)))
+
+
 class ConvergenceSpec(_Model):
     scf: ConvergencePattern
+    aufbau: AufbauSpec | None = Field(
+        None,
+        description="HOMO-LUMO gap lines: a negative gap (an empty orbital below a filled one) "
+        "marks an excited state, counted as not converged",
+    )
     scf_failed: ConvergencePattern | None = Field(
         None,
         description="pattern proving the program stopped because its SCF did not converge (it "

@@ -52,6 +52,7 @@ from ase.io import read, write
 
 from ionwell.config.engines import (
     ENERGY_UNITS,
+    AufbauSpec,
     CellSpec,
     ChargesSpec,
     CommandEngineConfig,
@@ -540,6 +541,31 @@ class CommandEngine:
                 f"{self._step(workdir)}{path}: {what} {found[-1]!r} is not an integer"
             ) from None
 
+    def _aufbau(self, workdir: Path, spec: AufbauSpec) -> str | None:
+        """Why the converged SCF is an excited state (a gap below ``-spec.tolerance`` eV), or
+        None when every printed gap passes or none is printed."""
+        path, text = self._text(workdir, spec.file, "the HOMO-LUMO gap")
+        try:
+            gaps = [
+                _number(g) * ENERGY_UNITS[spec.unit]
+                for g in re.findall(spec.regex, text, flags=re.MULTILINE)
+            ]
+        except ValueError as err:
+            raise EngineOutputError(
+                f"{self._step(workdir)}{path}: unreadable HOMO-LUMO gap ({err})"
+            ) from None
+        if not gaps:
+            log.info("%s: no line matching %r (aufbau not checked)", path, spec.regex)
+            return None
+        gap = min(gaps)
+        if gap >= -spec.tolerance:
+            return None
+        return (
+            f"{path.name}: HOMO-LUMO gap {gap:.2f} eV, an empty orbital below a filled one (more "
+            f"than {spec.tolerance:g} eV): the SCF stopped in an excited state, a saddle point of "
+            "its minimisation, not the ground state; counted as not converged"
+        )
+
     def _says(self, workdir: Path, pattern) -> bool:
         """Whether an output file matches ``pattern`` (False when the file is missing)."""
         try:
@@ -575,6 +601,12 @@ class CommandEngine:
         scf_ok, note = self._found(workdir, cfg.converged.scf, "SCF convergence")
         if note:
             notes.append(note)
+        if scf_ok and cfg.converged.aufbau is not None:
+            note = self._aufbau(workdir, cfg.converged.aufbau)
+            if note:
+                scf_ok = False
+                notes.append(note)
+                log.warning("%s%s", where, note)
         energy = self._value(workdir, out.energy, "the total energy")
 
         relax_ok: bool | None = None
