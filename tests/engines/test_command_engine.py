@@ -854,8 +854,9 @@ def test_an_excited_state_the_program_calls_converged_is_redone_from_a_fresh_gue
     """converged.aufbau: a gap below -tolerance (an empty orbital under a filled one) is an
     excited state, counted as not converged; the first try was from restart files, so the
     retry starts from the program's own guess. The runner with RUNNER_EXCITE=restart ends a
-    restarted water in a real excited state (maximum overlap method; measured with this runner
-    at grid level 3: 28.7 eV above the ground state, gaps -19.1 eV, ground-state gap 9.9 eV)
+    restarted water in a real excited state (maximum overlap method; measured with the same
+    scheme in PySCF at grid levels 1 and 3: 28.7 eV above the ground state, gaps -19.1 eV,
+    ground-state gap 9.9 eV)
     and says 'SCF converged'. Without the aufbau check that state is taken as the result."""
     from ionwell.engines.run import run_engine
 
