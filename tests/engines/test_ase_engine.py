@@ -163,6 +163,7 @@ def test_emt_energy_forces_equal_emt_and_file_potential(tmp_path):
     ref = atoms.copy()
     ref.calc = EMT()  # reference implementation: ASE's EMT itself
     assert result.energy == pytest.approx(ref.get_potential_energy(), abs=1e-12)
+    assert result.free_energy is None  # EMT has no smearing: its free energy is its energy
     np.testing.assert_allclose(np.array(result.forces), ref.get_forces(), atol=1e-12)
     assert result.code == f"ase:{HERE}.EMTWritingPotential"
     assert result.scf_converged is True

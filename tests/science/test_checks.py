@@ -722,6 +722,21 @@ def test_negative_voltage_step_is_flagged_and_a_positive_profile_is_quiet():
     assert [f.code for f in voltage_findings(steps, 1.5, {})] == ["voltage-below-floor"] * 2
 
 
+def test_a_smeared_campaign_with_energies_of_two_kinds_is_an_error():
+    # The zero-width estimate E - σS/2 and the internal energy E of a smeared SCF differ by
+    # σS/2 (Mermin's functional, F = E - σS; common practice): steps recorded before ionwell
+    # kept the free energy carry E, so a hull across both kinds is off at those steps.
+    from ionwell.science.checks import smeared_energy_findings
+
+    assert smeared_energy_findings([0, 1, 2], [-10.0, -11.0, -12.0]) == []  # all new
+    assert smeared_energy_findings([0, 1, 2], [None, None, None]) == []  # all old: one kind
+    (f,) = smeared_energy_findings([0, 1, 2, 3], [None, None, -12.0, -13.0])
+    assert (f.code, f.severity, f.step) == ("mixed-smeared-energies", "error", 0)
+    assert f.message.startswith("steps 0, 1 were recorded by an earlier ionwell")
+    many = smeared_energy_findings(list(range(13)), [None] * 12 + [-1.0])
+    assert "0, 1, 2, 3, 4, 5, 6, 7, 8, 9, ..." in many[0].message
+
+
 # level order: the aufbau principle (filled levels lowest without smearing; common practice)
 def test_level_order_flags_a_hole_below_an_empty_level() -> None:
     levels = [[-10.0, -5.0, -1.0, 0.5]]

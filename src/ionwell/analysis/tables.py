@@ -42,7 +42,7 @@ from ionwell.config.campaign import AnalysisConfig, format_validation_error, rea
 from ionwell.engines.base import StepResult
 from ionwell.errors import ConfigError, IonwellError
 from ionwell.science import energetics
-from ionwell.science.checks import Finding, voltage_findings
+from ionwell.science.checks import Finding, smeared_energy_findings, voltage_findings
 from ionwell.science.diagnostics import diagnose
 from ionwell.science.dos import dos_on_grid, frontier_level
 from ionwell.science.host import host_formula_units
@@ -383,6 +383,10 @@ def analyse(root: str | Path, settings: AnalysisConfig | None = None) -> Analysi
     hull_steps: list[int] = []
     voltages: list[float] = []
     found: list[Finding] = []
+    if campaign.engine.kind == "pyscf" and campaign.engine.smearing > 0:
+        found += smeared_energy_findings(
+            [r.step for r in records], [r.free_energy for r in records]
+        )
     cap = [energetics.capacity_mah_per_g(xi, unit, z) for xi in x]
     if ref is not None and 0 in n:
         ef = energetics.formation_energies(e, n, ref.mu)

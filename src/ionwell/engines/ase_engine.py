@@ -28,7 +28,9 @@ relaxation ran, ``calculator.txt`` (the calculator's text log, see above), ``pot
 (volts), ``output.json`` (written last), plus whatever the calculator writes.
 
 Energy (eV) and forces (eV/Å) are the calculator's own (``get_potential_energy``,
-``get_forces``); charges come from ``get_charges()`` where the calculator implements
+``get_forces``; with electronic smearing ASE's ``energy`` is extrapolated to zero width and the
+force-consistent free energy, where the calculator reports a different one, is recorded as
+``free_energy``); charges come from ``get_charges()`` where the calculator implements
 ``charges``. The SCF counts as converged unless the calculator has a boolean ``converged``
 attribute that is False (ASE has no common convergence flag).
 
@@ -71,6 +73,7 @@ from typing import Any
 
 import numpy as np
 from ase import Atoms
+from ase.calculators.calculator import PropertyNotImplementedError
 
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.engines.launcher import ScfNotConverged
@@ -315,6 +318,7 @@ class AseEngine(InProcessEngine):
                 final.calc = calc
                 forces = np.asarray(final.get_forces(), dtype=float)
             energy = float(calc.get_potential_energy(final))
+            free_energy = _free_energy(calc, final, energy)
         except (ConfigError, EngineOutputError):
             raise
         except Exception as err:
@@ -339,6 +343,7 @@ class AseEngine(InProcessEngine):
         converged = getattr(calc, "converged", True)
         result = StepResult(
             energy=energy,
+            free_energy=free_energy,
             forces=np.asarray(forces, dtype=float).tolist(),
             scf_converged=converged if isinstance(converged, bool) else True,
             relax_converged=relax_converged,
@@ -460,3 +465,13 @@ def _optional(calc, method: str) -> float | None:
     except Exception:  # not implemented, not computed, or not a number: optional
         return None
     return value if np.isfinite(value) else None
+
+
+def _free_energy(calc, atoms: Atoms, energy: float) -> float | None:
+    """The calculator's force-consistent (free) energy, eV, when it reports one that differs
+    from ``energy`` (electronic smearing), else None."""
+    try:
+        free = float(calc.get_potential_energy(atoms, force_consistent=True))
+    except (PropertyNotImplementedError, NotImplementedError, TypeError):  # not reported
+        return None
+    return None if abs(free - energy) < 1e-9 else free

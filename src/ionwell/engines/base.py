@@ -49,7 +49,15 @@ class StepResult(BaseModel):
 
     model_config = ConfigDict(arbitrary_types_allowed=True)
 
-    energy: float = Field(description="total energy, eV")
+    energy: float = Field(
+        description="total energy, eV; with electronic smearing, extrapolated to zero width "
+        "(E - σS/2, as ASE's 'energy' and GPAW report it)"
+    )
+    free_energy: float | None = Field(
+        None,
+        description="with electronic smearing: the Mermin free energy F = E - σS, eV, the energy "
+        "whose gradient the forces are (None: no smearing, or not reported by the engine)",
+    )
     forces: list[list[float]] | None = Field(None, description="eV/Å, per atom")
     scf_converged: bool
     scf_iterations: int | None = None

@@ -23,7 +23,11 @@ Science in brief:
   DIIS does not swap the donated electron between near-degenerate levels of an aromatic host;
   a DIIS run that stalls hands over to PySCF's second-order (Newton) solver. Hosts whose
   frontier levels are (nearly) degenerate once guests donate electrons converge far better with
-  Fermi smearing (``engine.smearing``);
+  Fermi smearing (``engine.smearing``). With smearing the analytic forces are the gradient of
+  the Mermin free energy F = E - σS (checked by finite differences in the tests), so the
+  relaxation minimises F; the result records F as ``free_energy`` and, as ``energy``, the
+  estimate extrapolated to zero width, E - σS/2 (PySCF's ``e_zero``; ASE's convention for
+  ``energy``), the quantity formation energies and the hull are built from;
 * warm start (``engine.warm_start``): the first SCF of a step starts from the previous step's
   solution plus the new guests' atoms (:func:`warm_start_guess`): neutral guests as atomic
   orbitals orthonormalised together with the previous occupied orbitals, with the new electron
@@ -91,6 +95,7 @@ __all__ = [
     "grid_box",
     "nuclear_potential",
     "potential_map",
+    "scf_energies",
     "warm_start_density",
     "warm_start_guess",
 ]
@@ -416,7 +421,7 @@ class PyscfCalculator(Calculator):
     Every new geometry warm-starts its SCF from the density of the previous one.
     """
 
-    implemented_properties = ["energy", "forces"]
+    implemented_properties = ["energy", "free_energy", "forces"]
 
     def __init__(self, ks: _KohnSham, **kwargs: Any) -> None:
         super().__init__(**kwargs)
@@ -426,10 +431,29 @@ class PyscfCalculator(Calculator):
         super().calculate(atoms, properties, system_changes)
         mf = self.ks.scf(self.atoms.positions)
         grad = self.ks.gradient()
+        energy, free = scf_energies(mf)
         self.results = {
-            "energy": float(mf.e_tot) * Hartree,
+            "energy": energy,
+            # the energy the forces are the gradient of (ASE's optimizers read this one)
+            "free_energy": energy if free is None else free,
             "forces": -grad * (Hartree / Bohr),
         }
+
+
+def scf_energies(mf) -> tuple[float, float | None]:
+    """``(energy, free_energy)`` of a converged PySCF SCF, eV.
+
+    Without smearing: ``(E, None)``. With Fermi smearing of width σ and electronic entropy S
+    (PySCF's ``entropy``, dimensionless): the energy extrapolated to zero width, E - σS/2
+    (PySCF's ``e_zero``), and the Mermin free energy F = E - σS (``e_free``), whose gradient
+    PySCF's analytic forces are.
+    """
+    sigma = getattr(mf, "sigma", None)
+    entropy = getattr(mf, "entropy", None)
+    if not sigma or entropy is None:
+        return float(mf.e_tot) * Hartree, None
+    e = float(mf.e_tot)
+    return (e - 0.5 * sigma * entropy) * Hartree, (e - sigma * entropy) * Hartree
 
 
 #: An occupied level this far (hartree) above an empty one of the same spin after a warm start
@@ -1038,8 +1062,10 @@ class PyscfEngine(InProcessEngine):
 
         energies, occupations, homo, lumo = _orbitals(mf)
         charge_sets = _charge_sets(mf, ks.dm)
+        energy, free_energy = scf_energies(mf)
         result = StepResult(
-            energy=float(mf.e_tot) * Hartree,
+            energy=energy,
+            free_energy=free_energy,
             forces=np.asarray(forces, dtype=float).tolist(),
             scf_converged=bool(mf.converged),
             scf_iterations=ks.iterations,

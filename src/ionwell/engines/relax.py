@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 from ase import Atoms
-from ase.calculators.calculator import BaseCalculator
+from ase.calculators.calculator import BaseCalculator, PropertyNotImplementedError
 from ase.constraints import FixAtoms
 
 from ionwell.config.campaign import RelaxConfig
@@ -84,10 +84,12 @@ def relax_atoms(
 
         def report() -> None:
             f = a.get_forces()
+            label, value = _force_consistent_energy(a)
             log.info(
-                "relax step %d: E = %.6f eV, fmax = %.4f eV/Å",
+                "relax step %d: %s = %.6f eV, fmax = %.4f eV/Å",
                 opt.nsteps,
-                a.get_potential_energy(),
+                label,
+                value,
                 float(np.sqrt((f**2).sum(axis=1)).max()),
             )
 
@@ -99,3 +101,15 @@ def relax_atoms(
     log.info("relaxation %s after %d steps", "converged" if converged else "NOT converged", steps)
     final = Atoms(a.get_chemical_symbols(), positions=a.positions, cell=a.cell, pbc=a.pbc)
     return converged, steps, final, forces
+
+
+def _force_consistent_energy(atoms: Atoms) -> tuple[str, float]:
+    """The energy whose gradient the forces are, eV, and its symbol: the free energy ("F")
+    where the calculator reports one that differs from its energy (electronic smearing), else
+    the energy ("E"). It is the energy the optimizer lowers, so the relaxation log shows it."""
+    energy = float(atoms.get_potential_energy())
+    try:
+        free = float(atoms.get_potential_energy(force_consistent=True))
+    except PropertyNotImplementedError:
+        return "E", energy
+    return ("E", energy) if free == energy else ("F", free)

@@ -179,6 +179,10 @@ def collect_outputs(workdir: Path, code: str = "engine") -> tuple[StepResult, Gr
         result = result.model_copy(update=_read_arrays(workdir, len(result.symbols)))
     if not math.isfinite(result.energy):
         raise EngineOutputError(f"{out}: energy is {result.energy}; expected a finite number")
+    if result.free_energy is not None and not math.isfinite(result.free_energy):
+        raise EngineOutputError(
+            f"{out}: free_energy is {result.free_energy}; expected a finite number or null"
+        )
     if result.forces is not None and not np.isfinite(np.asarray(result.forces)).all():
         raise EngineOutputError(f"{out}: forces hold non-finite values")
     if not result.symbols:

@@ -103,6 +103,7 @@ __all__ = [
     "guest_packing_findings",
     "guest_pair_findings",
     "metal_neighbour_distance",
+    "smeared_energy_findings",
     "step_findings",
     "voltage_findings",
     "worst_severity",
@@ -1143,3 +1144,32 @@ def voltage_findings(
                 )
             )
     return out
+
+
+def smeared_energy_findings(
+    steps: Sequence[int], free_energies: Sequence[float | None]
+) -> list[Finding]:
+    """An error when the steps of a campaign whose every SCF is smeared hold energies of two
+    kinds: steps with a recorded free energy have the energy extrapolated to zero width,
+    E - σS/2; steps without one were recorded before ionwell kept it, as the internal energy E
+    of the smeared SCF. Formation energies and voltages across the two kinds are off by σS/2 at
+    the old steps (σ the width, S the electronic entropy). ``free_energies`` are the steps'
+    recorded free energies (eV, None where absent). No finding when all steps are of one kind.
+    """
+    old = [s for s, f in zip(steps, free_energies, strict=True) if f is None]
+    if not old or len(old) == len(steps):
+        return []
+    shown = ", ".join(str(s) for s in old[:10]) + (", ..." if len(old) > 10 else "")
+    return [
+        Finding(
+            severity="error",
+            code="mixed-smeared-energies",
+            message=(
+                f"steps {shown} were recorded by an earlier ionwell as the smeared SCF's "
+                "internal energy E, the others as the energy extrapolated to zero width, "
+                "E - σS/2: formation energies and voltages mix the two (off by σS/2 at those "
+                "steps); compute those steps again, or the campaign, with this version"
+            ),
+            step=old[0],
+        )
+    ]

@@ -58,7 +58,7 @@ class Rejection(BaseModel):
     reason: str
 
 
-_LATE_FIELDS = ("job_id", "inputs", "pre_relax", "guess")
+_LATE_FIELDS = ("job_id", "inputs", "pre_relax", "guess", "free_energy")
 #: fields of a decision's wells added after the first release: they enter the hash only when set
 _LATE_SITE_FIELDS = ("boundary",)
 
@@ -99,7 +99,14 @@ class LedgerRecord(BaseModel):
     outcome: Literal["continue", "stop"]
     stop_reason: str | None = None
     guests: int = Field(description="guests in the step's structure")
-    energy: float | None = Field(None, description="total energy, eV")
+    energy: float | None = Field(
+        None, description="total energy, eV (with smearing: extrapolated to zero width)"
+    )
+    free_energy: float | None = Field(
+        None,
+        description="with electronic smearing: the free energy E - σS, eV, that the forces "
+        "derive from (None: no smearing, or recorded before ionwell kept it)",
+    )
     scf_converged: bool | None = None
     scf_iterations: int | None = None
     findings: dict[str, int] = Field(default_factory=dict, description="count per severity")

@@ -590,7 +590,10 @@ def _collect(paths: CampaignPaths, step: int, round_: int) -> Collected:
     atomic_write_text(sp.result, data.model_dump_json(indent=2))
     relaxed = result.atoms()
     forces = None if result.forces is None else np.asarray(result.forces)
-    relaxed.calc = SinglePointCalculator(relaxed, energy=result.energy, forces=forces)
+    free = result.energy if result.free_energy is None else result.free_energy
+    relaxed.calc = SinglePointCalculator(
+        relaxed, energy=result.energy, free_energy=free, forces=forces
+    )
     atomic_write_extxyz(sp.relaxed, relaxed)
     collected = Collected(
         step=step, round=round_, energy=result.energy, scf_converged=result.scf_converged
@@ -770,6 +773,7 @@ def _finish(
         stop_reason=reason,
         guests=prep.guests,
         energy=result.energy,
+        free_energy=result.free_energy,
         scf_converged=result.scf_converged,
         scf_iterations=result.scf_iterations,
         findings=counts,
