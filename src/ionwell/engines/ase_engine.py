@@ -73,10 +73,10 @@ from typing import Any
 
 import numpy as np
 from ase import Atoms
-from ase.calculators.calculator import PropertyNotImplementedError
 
 from ionwell.engines.base import ComputeContext, StepResult
 from ionwell.engines.launcher import ScfNotConverged
+from ionwell.engines.relax import free_energy as _free_energy
 from ionwell.engines.relax import relax_atoms
 from ionwell.engines.results import (
     CONTEXT,
@@ -318,7 +318,7 @@ class AseEngine(InProcessEngine):
                 final.calc = calc
                 forces = np.asarray(final.get_forces(), dtype=float)
             energy = float(calc.get_potential_energy(final))
-            free_energy = _free_energy(calc, final, energy)
+            free_energy = _free_energy(calc, final)
         except (ConfigError, EngineOutputError):
             raise
         except Exception as err:
@@ -465,13 +465,3 @@ def _optional(calc, method: str) -> float | None:
     except Exception:  # not implemented, not computed, or not a number: optional
         return None
     return value if np.isfinite(value) else None
-
-
-def _free_energy(calc, atoms: Atoms, energy: float) -> float | None:
-    """The calculator's force-consistent (free) energy, eV, when it reports one that differs
-    from ``energy`` (electronic smearing), else None."""
-    try:
-        free = float(calc.get_potential_energy(atoms, force_consistent=True))
-    except (PropertyNotImplementedError, NotImplementedError, TypeError):  # not reported
-        return None
-    return None if abs(free - energy) < 1e-9 else free

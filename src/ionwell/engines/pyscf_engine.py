@@ -448,12 +448,10 @@ def scf_energies(mf) -> tuple[float, float | None]:
     (PySCF's ``e_zero``), and the Mermin free energy F = E - σS (``e_free``), whose gradient
     PySCF's analytic forces are.
     """
-    sigma = getattr(mf, "sigma", None)
-    entropy = getattr(mf, "entropy", None)
-    if not sigma or entropy is None:
+    free = getattr(mf, "e_free", None)  # set by PySCF's smearing on every energy evaluation
+    if free is None:
         return float(mf.e_tot) * Hartree, None
-    e = float(mf.e_tot)
-    return (e - 0.5 * sigma * entropy) * Hartree, (e - sigma * entropy) * Hartree
+    return float(mf.e_zero) * Hartree, float(free) * Hartree
 
 
 #: An occupied level this far (hartree) above an empty one of the same spin after a warm start

@@ -19,7 +19,7 @@ from ase.constraints import FixAtoms
 
 from ionwell.config.campaign import RelaxConfig
 
-__all__ = ["GUEST_HESSIAN", "RELAX_LOG", "TRAJECTORY", "relax_atoms"]
+__all__ = ["GUEST_HESSIAN", "RELAX_LOG", "TRAJECTORY", "free_energy", "relax_atoms"]
 
 log = logging.getLogger("ionwell.engines.relax")
 
@@ -84,12 +84,12 @@ def relax_atoms(
 
         def report() -> None:
             f = a.get_forces()
-            label, value = _force_consistent_energy(a)
+            free = free_energy(calc, a)  # the energy the optimizer lowers, where it differs
             log.info(
                 "relax step %d: %s = %.6f eV, fmax = %.4f eV/Å",
                 opt.nsteps,
-                label,
-                value,
+                "E" if free is None else "F",
+                a.get_potential_energy() if free is None else free,
                 float(np.sqrt((f**2).sum(axis=1)).max()),
             )
 
@@ -103,13 +103,12 @@ def relax_atoms(
     return converged, steps, final, forces
 
 
-def _force_consistent_energy(atoms: Atoms) -> tuple[str, float]:
-    """The energy whose gradient the forces are, eV, and its symbol: the free energy ("F")
-    where the calculator reports one that differs from its energy (electronic smearing), else
-    the energy ("E"). It is the energy the optimizer lowers, so the relaxation log shows it."""
-    energy = float(atoms.get_potential_energy())
+def free_energy(calc, atoms: Atoms) -> float | None:
+    """The calculator's force-consistent (free) energy at ``atoms``, eV, when it reports one
+    that differs from its energy (electronic smearing), else None."""
+    energy = float(calc.get_potential_energy(atoms))
     try:
-        free = float(atoms.get_potential_energy(force_consistent=True))
-    except PropertyNotImplementedError:
-        return "E", energy
-    return ("E", energy) if free == energy else ("F", free)
+        free = float(calc.get_potential_energy(atoms, force_consistent=True))
+    except (PropertyNotImplementedError, NotImplementedError, TypeError):  # not reported
+        return None
+    return None if abs(free - energy) < 1e-9 else free
