@@ -62,12 +62,17 @@ guess's first Fock matrices are on coronene. Its rows are ``fresh+adiis`` and ``
 both against the plain cold SCF.
 
 Prints one JSON line per SCF comparison and, per functional, basis and mode, the median
-ratios warm/cold. ``--root`` keeps the campaign there and reuses it. Run by hand; not a test.
+ratios warm/cold. ``--root`` keeps the campaign there and reuses it, and keeps each step's cold
+solution under ``sources/`` (named by a digest of the settings, structure and charge):
+``--from-step K`` takes step K − 1's from there when an earlier run solved it, so a long series
+(a coronene bilayer at 6-31G, ~20-40 min per SCF) can be measured a step or two per sitting.
+Run by hand; not a test.
 """
 
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import statistics
 import subprocess
@@ -251,6 +256,27 @@ def _coarse_then_full(mol, cfg: PyscfEngineConfig, guess, level: int, tol: float
     return coarse, _solve(mol, cfg, coarse.dm)
 
 
+def _source_path(root: Path, cfg: PyscfEngineConfig, mode: str, atoms, charge: int) -> Path:
+    """Where the cold solution of one step is kept: named by the mode and a digest of the
+    engine settings (but the thread count), the structure and the charge, so a later run (``--from-step``) reuses it as
+    its warm source only when all of them are the same."""
+    digest = hashlib.sha256()
+    digest.update(cfg.model_dump_json(exclude={"threads"}).encode())  # threads: same answer
+    digest.update(np.ascontiguousarray(atoms.numbers, dtype=np.int64).tobytes())
+    digest.update(np.round(np.asarray(atoms.positions, dtype=float), 8).tobytes())
+    digest.update(str(charge).encode())
+    return root / "sources" / f"{mode}-{len(atoms)}-{digest.hexdigest()[:16]}.chk"
+
+
+def _chk_density(path: Path) -> np.ndarray:
+    """The density matrix of the SCF kept in checkpoint ``path`` (both spins for UKS)."""
+    scf = chkfile.load(str(path), "scf")
+    coeff, occ = np.asarray(scf["mo_coeff"]), np.asarray(scf["mo_occ"])
+    if coeff.ndim == 2:
+        return (coeff * occ) @ coeff.T
+    return np.stack([(c * o) @ c.T for c, o in zip(coeff, occ, strict=True)])
+
+
 def _total(dm: np.ndarray) -> np.ndarray:
     return dm if dm.ndim == 2 else dm[0] + dm[1]
 
@@ -388,8 +414,9 @@ def main() -> None:
         "--from-step",
         type=int,
         default=1,
-        help="first step with a warm-vs-cold row (earlier steps are skipped, step K-1 is solved "
-        "cold as the warm source; to add steps to a series measured before)",
+        help="first step with a warm-vs-cold row (earlier steps are skipped; step K-1 is the "
+        "warm source: its cold solution kept under ROOT/sources by an earlier run with the same "
+        "structure and settings, else solved cold; to add steps to a series measured before)",
     )
     ap.add_argument(
         "--early",
@@ -469,6 +496,13 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
             continue
         charge = 0 if mode == "neutral" else n
         mol = build_mol(atoms, cfg.basis, charge)
+        source = _source_path(root, cfg, mode, atoms, charge)
+        if n == args.from_step - 1 and n > 0 and source.is_file():
+            # the warm source of the first measured step, kept by an earlier run of the same
+            # structure and settings: no row of its own, so no need to solve it again
+            chk_prev, dm_prev = source, _total(_chk_density(source))
+            print(json.dumps({**tag, "step": n, "warm_source": str(source)}), flush=True)
+            continue
         ks = _solve(mol, cfg, None)
         it_c, t_c, e_c = ks.iterations, ks.scf_seconds, float(ks.mf.e_tot) * Hartree
         row = {**tag, "step": n, "atoms": len(atoms), "spin": mol.spin,
@@ -555,7 +589,8 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
             relax_ratios += [w / c for w, c in zip(warm, cold, strict=True)]
             print(json.dumps({**tag, "step": n, "relaxation": True,
                               "warm_iterations": warm, "cold_iterations": cold}), flush=True)  # fmt: skip
-        chk_prev = Path(root) / f"{mode}-{n}.chk"
+        chk_prev = source
+        chk_prev.parent.mkdir(parents=True, exist_ok=True)
         chk_prev.unlink(missing_ok=True)
         mf = ks.mf
         chkfile.dump_scf(mf.mol, str(chk_prev), mf.e_tot, mf.mo_energy, mf.mo_coeff, mf.mo_occ)
