@@ -89,7 +89,7 @@ from ase.io import read
 from ase.optimize import BFGS
 from ase.units import Hartree
 from pyscf.lo import orth
-from pyscf.scf import chkfile
+from pyscf.scf import chkfile, hf, uhf
 from pyscf.scf import diis as scf_diis
 
 from ionwell.config.campaign import PyscfEngineConfig
@@ -258,8 +258,8 @@ def _coarse_then_full(mol, cfg: PyscfEngineConfig, guess, level: int, tol: float
 
 def _source_path(root: Path, cfg: PyscfEngineConfig, mode: str, atoms, charge: int) -> Path:
     """Where the cold solution of one step is kept: named by the mode and a digest of the
-    engine settings (but the thread count), the structure and the charge, so a later run (``--from-step``) reuses it as
-    its warm source only when all of them are the same."""
+    engine settings (but the thread count), the structure and the charge, so a later run
+    (``--from-step``) reuses it as its warm source only when all of them are the same."""
     digest = hashlib.sha256()
     digest.update(cfg.model_dump_json(exclude={"threads"}).encode())  # threads: same answer
     digest.update(np.ascontiguousarray(atoms.numbers, dtype=np.int64).tobytes())
@@ -272,9 +272,7 @@ def _chk_density(path: Path) -> np.ndarray:
     """The density matrix of the SCF kept in checkpoint ``path`` (both spins for UKS)."""
     scf = chkfile.load(str(path), "scf")
     coeff, occ = np.asarray(scf["mo_coeff"]), np.asarray(scf["mo_occ"])
-    if coeff.ndim == 2:
-        return (coeff * occ) @ coeff.T
-    return np.stack([(c * o) @ c.T for c, o in zip(coeff, occ, strict=True)])
+    return (hf if coeff.ndim == 2 else uhf).make_rdm1(coeff, occ)
 
 
 def _total(dm: np.ndarray) -> np.ndarray:
@@ -497,7 +495,7 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
         charge = 0 if mode == "neutral" else n
         mol = build_mol(atoms, cfg.basis, charge)
         source = _source_path(root, cfg, mode, atoms, charge)
-        if n == args.from_step - 1 and n > 0 and source.is_file():
+        if n == args.from_step - 1 and source.is_file():
             # the warm source of the first measured step, kept by an earlier run of the same
             # structure and settings: no row of its own, so no need to solve it again
             chk_prev, dm_prev = source, _total(_chk_density(source))
