@@ -502,6 +502,10 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
             print(json.dumps({**tag, "step": n, "warm_source": str(source)}), flush=True)
             continue
         ks = _solve(mol, cfg, None)
+        mf = ks.mf  # kept at once, so a run stopped during this step's warm SCFs keeps it
+        source.parent.mkdir(parents=True, exist_ok=True)
+        source.unlink(missing_ok=True)
+        chkfile.dump_scf(mf.mol, str(source), mf.e_tot, mf.mo_energy, mf.mo_coeff, mf.mo_occ)
         it_c, t_c, e_c = ks.iterations, ks.scf_seconds, float(ks.mf.e_tot) * Hartree
         row = {**tag, "step": n, "atoms": len(atoms), "spin": mol.spin,
                "cold_iterations": it_c, "cold_seconds": round(t_c, 2), "cold_solver": ks.solver,
@@ -588,10 +592,6 @@ def _series(structures, cfg, mode, constructions, relax_steps, args, root: Path)
             print(json.dumps({**tag, "step": n, "relaxation": True,
                               "warm_iterations": warm, "cold_iterations": cold}), flush=True)  # fmt: skip
         chk_prev = source
-        chk_prev.parent.mkdir(parents=True, exist_ok=True)
-        chk_prev.unlink(missing_ok=True)
-        mf = ks.mf
-        chkfile.dump_scf(mf.mol, str(chk_prev), mf.e_tot, mf.mo_energy, mf.mo_coeff, mf.mo_occ)
         dm_prev = _total(ks.dm)
     summary = {**tag, "relaxation_median_ratio": _median(relax_ratios)}
     for c in ratios:
