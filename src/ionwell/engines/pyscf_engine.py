@@ -680,7 +680,7 @@ def warm_start_guess(
         o = np.concatenate([o_prev, o_new[keep]])
         if construction == "orbitals":
             c = _orthonormal(c, s)
-        dms.append((c * o) @ c.T)
+        dms.append(scf.hf.make_rdm1(c, o))
     dm = np.array(dms)
     return (dm if unrestricted else dm[0] + dm[1]), label
 
@@ -691,10 +691,8 @@ def _with_neutral_atoms(
     """The ``neutral-atoms`` warm start: previous density plus neutral atomic densities,
     cross blocks zero, the atomic part split evenly between the spin channels."""
     _, _, _, scf, *_ = _pyscf()
-    if mo.ndim == 3:  # unrestricted: (alpha, beta)
-        dm_prev = np.array([(c * o) @ c.T for c, o in zip(mo, occ, strict=True)])
-    else:
-        dm_prev = (mo * occ) @ mo.T
+    # unrestricted orbitals come as (alpha, beta)
+    dm_prev = (scf.uhf if mo.ndim == 3 else scf.hf).make_rdm1(mo, occ)
     with warnings.catch_warnings():  # PySCF's atomic SCF uses a deprecated helper of its own
         warnings.simplefilter("ignore", DeprecationWarning)
         dm = np.asarray(scf.hf.init_guess_by_atom(mol))
